@@ -1,0 +1,127 @@
+"""Benchmarks: `python -m tinyrnnt.bench NAME` prints figures, the last line one JSON object.
+
+    corpus   synthesis speed, default corpus build time and size, homophone share, determinism
+    train    training throughput and FLOP utilisation, loss timing, greedy RTF, memory, CER curve
+
+Each builds what it needs (corpus, checkpoints) when missing. Rates are
+fractions, times in seconds unless the key says ms.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import json
+import os
+import resource
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+
+def _log(msg: str) -> None:
+    print(msg, file=sys.stderr, flush=True)
+
+
+def folder_digest(folder: Path) -> str:
+    h = hashlib.sha256()
+    for p in sorted(folder.iterdir()):
+        h.update(p.name.encode())
+        h.update(hashlib.sha256(p.read_bytes()).digest())
+    return h.hexdigest()
+
+
+def synth_speed(n_utts: int = 2000, seed: int = 0) -> float:
+    """Utterances per second of the acoustic renderer on one core (default text and speakers)."""
+    import numpy as np
+
+    from tinyrnnt.synth.acoustics import Renderer, make_speakers
+    from tinyrnnt.synth.corpus import CorpusConfig, make_text
+
+    cfg = CorpusConfig(train_utts=n_utts, valid_utts=10, test_utts=10, test_unseen_utts=10, seed=seed)
+    _, _, splits = make_text(cfg)
+    speakers = make_speakers(50, np.random.default_rng(seed), cfg.acoustics)
+    renderer = Renderer(cfg.acoustics, speakers)
+    phones = [s.phones for s in splits["train"]]
+    ids = [i % len(speakers) for i in range(len(phones))]
+    renderer.render(phones[:50], ids[:50], np.random.default_rng(1))  # warm-up
+    t0 = time.perf_counter()
+    feats, _ = renderer.render(phones, ids, np.random.default_rng(2))
+    dt = time.perf_counter() - t0
+    _log(f"rendered {len(feats)} utterances, mean {np.mean([len(f) for f in feats]) / 100:.2f} s, in {dt:.2f} s")
+    return len(feats) / dt
+
+
+def bench_corpus(args) -> dict:
+    from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
+
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+    speed = synth_speed()
+    out = Path(args.corpus)
+    card_path = out / "card.json"
+    if args.rebuild or not card_path.is_file():
+        t0 = time.perf_counter()
+        card = build_corpus(CorpusConfig(), out, overwrite=args.rebuild, quiet=False)
+        build_s = time.perf_counter() - t0
+    else:
+        card = json.loads(card_path.read_text())
+        build_s = card["build_seconds"]
+        _log(f"{out} exists; its recorded build time is quoted (use --rebuild to measure again)")
+    small = dict(train_utts=300, valid_utts=40, test_utts=40, test_unseen_utts=40, max_list_size=500,
+                 list_sizes=(0, 10, 100, 500))
+    with tempfile.TemporaryDirectory() as tmp:
+        a = build_corpus(CorpusConfig(seed=7, **small), Path(tmp) / "a", quiet=True)
+        b = build_corpus(CorpusConfig(seed=7, **small), Path(tmp) / "b", quiet=True)
+        c = build_corpus(CorpusConfig(seed=8, **small), Path(tmp) / "c", quiet=True)
+        del a, b, c
+        da, db, dc = (folder_digest(Path(tmp) / x) for x in "abc")
+    return {
+        "synth_utt_per_s_1core": round(speed, 1),
+        "default_corpus_build_s": round(build_s, 1),
+        "default_corpus_mb": card["size_mb"],
+        "name_homophone_share": card["inventory"]["name_homophone_share"],
+        "same_seed_same_bytes": da == db,
+        "different_seed_different_bytes": da != dc,
+        "train_hours": card["splits"]["train"]["hours"],
+    }
+
+
+def sgemm_gflops(threads: int, n: int = 2048, repeats: int = 10) -> float:
+    import torch
+
+    torch.set_num_threads(threads)
+    a, b = torch.randn(n, n), torch.randn(n, n)
+    for _ in range(2):
+        a @ b
+    t0 = time.perf_counter()
+    for _ in range(repeats):
+        a @ b
+    return 2 * n ** 3 * repeats / (time.perf_counter() - t0) / 1e9
+
+
+def bench_train(args) -> dict:
+    from tinyrnnt.lab.trainbench import run_train_bench
+
+    return run_train_bench(args)
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(prog="python -m tinyrnnt.bench", description=__doc__,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("name", choices=["corpus", "train"])
+    p.add_argument("--corpus", default="corpora/default", help="default corpus folder (built when missing)")
+    p.add_argument("--rebuild", action="store_true", help="corpus: rebuild the default corpus to time it")
+    p.add_argument("--minutes", type=float, default=10.0, help="train: training minutes (default 10)")
+    p.add_argument("--fresh", action="store_true", help="train: retrain even if a benchmark run exists")
+    p.add_argument("--run-dir", default="runs/bench-train", help="train: where the benchmark model lives")
+    args = p.parse_args(argv)
+    result = {"corpus": bench_corpus, "train": bench_train}[args.name](args)
+    result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
+    print(json.dumps(result))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

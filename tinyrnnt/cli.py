@@ -1,0 +1,174 @@
+"""The `tinyrnnt` command line (thin: every command calls importable functions).
+
+    tinyrnnt corpus  [--out DIR] [--overwrite] [key=value ...]   build a synthetic corpus, print its card
+    tinyrnnt card    DIR                                          print the card of a corpus
+    tinyrnnt train   [--recipe R] [--resume] [key=value ...]      train one model
+    tinyrnnt decode  CHECKPOINT [--split S] [--list-size N] ...   decode a split, write hypotheses + scores
+    tinyrnnt score   HYPS.jsonl [--corpus DIR --split S]          score a hypothesis file
+    tinyrnnt experiment [RECIPE] [key=value ...]                  corpus if needed, train, evaluate, table
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from tinyrnnt.config import ConfigError
+
+
+def _corpus(args) -> int:
+    from tinyrnnt import config as C
+    from tinyrnnt.synth.card import format_card
+    from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
+
+    cfg = C.apply_overrides(CorpusConfig(), args.settings)
+    card = build_corpus(cfg, args.out, overwrite=args.overwrite, quiet=args.quiet)
+    print(format_card(card))
+    return 0
+
+
+def _card(args) -> int:
+    from tinyrnnt.synth.card import format_card
+
+    path = Path(args.folder) / "card.json"
+    if not path.is_file():
+        print(f"error: {path} not found; is {args.folder} a corpus folder?", file=sys.stderr)
+        return 2
+    print(format_card(json.loads(path.read_text(encoding="utf-8"))))
+    return 0
+
+
+def _train(args) -> int:
+    from tinyrnnt.experiment import load_experiment
+    from tinyrnnt.lab.recipes import ensure_corpus
+    from tinyrnnt.lab.train import train
+
+    cfg = load_experiment(args.recipe, args.settings)
+    ensure_corpus(cfg, quiet=args.quiet)
+    result = train(cfg, quiet=args.quiet, resume=args.resume)
+    print(f"trained {result.steps} steps in {result.train_seconds / 60:.1f} training minutes; "
+          f"best checkpoint {result.best_checkpoint}")
+    return 0
+
+
+def _decode(args) -> int:
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.lab.evaluate import evaluate, save_results
+    from tinyrnnt.lab.train import load_model
+
+    model, cfg, _ = load_model(args.checkpoint)
+    split = CorpusSplit(args.corpus or cfg.data.corpus, args.split)
+    records, summary = evaluate(model, split, list_size=args.list_size, confusable=args.confusable,
+                                max_symbols=cfg.decode.max_symbols)
+    out = Path(args.out or Path(args.checkpoint).parent.parent / "decode")
+    name = f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else "")
+    save_results(out, name, records, summary)
+    print(json.dumps({k: summary[k] for k in ("wer", "cer", "uwer", "bwer", "recall", "precision")}, indent=1))
+    print(f"wrote {out / (name + '.hyps.jsonl')} and {out / (name + '.scores.json')}")
+    return 0
+
+
+def _score(args) -> int:
+    from tinyrnnt.score import score_utterance, summarize
+
+    counts = []
+    lists = {}
+    if args.corpus:
+        from tinyrnnt.data import CorpusSplit
+
+        split = CorpusSplit(args.corpus, args.split)
+        by_id = {it["id"]: i for i, it in enumerate(split.items)}
+    for lineno, line in enumerate(Path(args.hyps).read_text(encoding="utf-8").splitlines(), 1):
+        try:
+            row = json.loads(line)
+            ref, hyp = row["ref"], row["hyp"]
+        except (json.JSONDecodeError, KeyError, TypeError):
+            print(f"error: {args.hyps}:{lineno}: expected a JSON object with 'ref' and 'hyp'", file=sys.stderr)
+            return 2
+        lst = []
+        if args.corpus and row.get("list_size"):
+            lst = split.biasing_list(by_id[row["id"]], int(row["list_size"]))
+        lists[row.get("id")] = lst
+        counts.append(score_utterance(ref, hyp, lst))
+    print(json.dumps(summarize(counts), indent=1))
+    return 0
+
+
+def _experiment(args) -> int:
+    from tinyrnnt.lab.recipes import run_recipe
+
+    run_recipe(args.recipe, args.settings, quiet=args.quiet)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="tinyrnnt", description="A laptop lab for contextual biasing of RNN-T models.")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    c = sub.add_parser("corpus", help="build a synthetic corpus and print its card")
+    c.add_argument("--out", default="corpora/default", help="corpus folder to create (default corpora/default)")
+    c.add_argument("--overwrite", action="store_true", help="replace an existing corpus folder")
+    c.add_argument("--quiet", action="store_true")
+    c.add_argument("settings", nargs="*", help="corpus settings as key=value, e.g. seed=3 train_utts=2000")
+    c.set_defaults(fn=_corpus)
+
+    k = sub.add_parser("card", help="print the card of an existing corpus")
+    k.add_argument("folder")
+    k.set_defaults(fn=_card)
+
+    t = sub.add_parser("train", help="train one model (recipe + key=value settings)")
+    t.add_argument("--recipe", default=None, help="recipe YAML (only its differences from the defaults)")
+    t.add_argument("--resume", action="store_true", help="continue from the run folder's last checkpoint")
+    t.add_argument("--quiet", action="store_true")
+    t.add_argument("settings", nargs="*", help="section.key=value, e.g. train.minutes=5 model.encoder_dim=192")
+    t.set_defaults(fn=_train)
+
+    d = sub.add_parser("decode", help="decode a split with a checkpoint; write hypotheses and scores")
+    d.add_argument("checkpoint")
+    d.add_argument("--corpus", default=None, help="corpus folder (default: the one the model trained on)")
+    d.add_argument("--split", default="test")
+    d.add_argument("--list-size", type=int, default=0, help="biasing list size N (0 = no list)")
+    d.add_argument("--confusable", action="store_true", help="lists led by other spellings of the same sound")
+    d.add_argument("--out", default=None, help="folder for results (default: RUN/decode)")
+    d.set_defaults(fn=_decode)
+
+    s = sub.add_parser("score", help="score a hypothesis file (JSON Lines with ref and hyp)")
+    s.add_argument("hyps")
+    s.add_argument("--corpus", default=None, help="corpus folder, to score against its biasing lists")
+    s.add_argument("--split", default="test")
+    s.set_defaults(fn=_score)
+
+    e = sub.add_parser("experiment", help="run a recipe end to end: corpus, training, evaluation, table")
+    e.add_argument("recipe", nargs="?", default=None, help="recipe YAML (default: the built-in baseline)")
+    e.add_argument("--quiet", action="store_true")
+    e.add_argument("settings", nargs="*", help="section.key=value overrides for every model of the recipe")
+    e.set_defaults(fn=_experiment)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    from tinyrnnt.data import CorpusError
+    from tinyrnnt.synth.corpus import CorpusExistsError
+    from tinyrnnt.synth.lexicon import LexiconError
+    from tinyrnnt.synth.scenario import ScenarioError
+
+    known = (ConfigError, CorpusError, CorpusExistsError, LexiconError, ScenarioError)
+    try:
+        return args.fn(args)
+    except known as err:
+        print(f"error: {err}", file=sys.stderr)
+        return 2
+    except Exception as err:
+        from tinyrnnt.lab.train import CheckpointError
+
+        if isinstance(err, CheckpointError):
+            print(f"error: {err}", file=sys.stderr)
+            return 2
+        raise
+
+
+if __name__ == "__main__":
+    sys.exit(main())

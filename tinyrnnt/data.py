@@ -1,0 +1,184 @@
+"""Reading corpora, batching by length, and the Lightning data module.
+
+A corpus folder is what `tinyrnnt.synth.corpus` writes (see its docstring).
+Features are stored as uint8 and come out here as float32, normalised with the
+training split's per-bin mean and deviation from the corpus card.
+
+Batches are dicts:
+    feats (B, T, F) float32, feat_lens (B,), targets (B, U) long (padded with 0),
+    target_lens (B,), ids, texts, and `lists` (per utterance a list of words) when
+    the split carries biasing lists or a list sampler is set.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from tinyrnnt.text import encode
+
+
+class CorpusError(ValueError):
+    """A corpus folder is missing or damaged."""
+
+
+@dataclass
+class DataConfig:
+    corpus: str = "corpora/default"  # corpus folder (built by `tinyrnnt corpus`)
+    batch_size: int = 32
+    bucket_batches: int = 20  # batches per length bucket: larger = less padding, less randomness
+    valid_subset: int = 200  # valid utterances decoded during training (0 = all)
+    eval_batch_size: int = 64
+
+
+class CorpusSplit(torch.utils.data.Dataset):
+    """One split of a corpus folder: manifest, memory-mapped frames, biasing lists."""
+
+    def __init__(self, folder: str | Path, split: str, limit: int | None = None):
+        folder = Path(folder)
+        card_path = folder / "card.json"
+        if not card_path.is_file():
+            raise CorpusError(f"{folder}: no corpus here (card.json missing); build one with `tinyrnnt corpus`")
+        self.folder, self.split = folder, split
+        self.card = json.loads(card_path.read_text(encoding="utf-8"))
+        manifest = folder / f"{split}.jsonl"
+        if not manifest.is_file():
+            raise CorpusError(f"{manifest}: split {split!r} not found; splits here: "
+                              f"{sorted(p.stem for p in folder.glob('*.jsonl'))}")
+        self.items = []
+        with open(manifest, encoding="utf-8") as f:
+            for lineno, line in enumerate(f, 1):
+                try:
+                    item = json.loads(line)
+                    item["tokens"] = encode(item["text"], where=f"{manifest}:{lineno}")
+                except (json.JSONDecodeError, KeyError) as err:
+                    raise CorpusError(f"{manifest}:{lineno}: not a manifest line ({err})") from None
+                if item["frames"] <= 0:
+                    raise CorpusError(f"{manifest}:{lineno}: utterance {item.get('id')} has no frames")
+                self.items.append(item)
+                if limit is not None and len(self.items) >= limit:
+                    break
+        self.frames = np.load(folder / f"{split}.feats.npy", mmap_mode="r")
+        end = self.items[-1]["offset"] + self.items[-1]["frames"] if self.items else 0
+        if end > self.frames.shape[0]:
+            raise CorpusError(f"{folder / (split + '.feats.npy')}: holds {self.frames.shape[0]} frames, "
+                              f"the manifest needs {end}; rebuild the corpus")
+        feat = self.card["features"]
+        self.offset, self.step = float(feat["offset"]), float(feat["step"])
+        self.mean = np.asarray(feat["mean"], dtype=np.float32)
+        self.inv_std = 1.0 / np.asarray(feat["std"], dtype=np.float32)
+        self._lists: dict[str, np.ndarray] = {}
+        self._inventory: list[dict] | None = None
+
+    def __len__(self) -> int:
+        return len(self.items)
+
+    def lengths(self) -> np.ndarray:
+        return np.array([it["frames"] for it in self.items])
+
+    def features(self, i: int) -> np.ndarray:
+        it = self.items[i]
+        q = self.frames[it["offset"]: it["offset"] + it["frames"]]
+        return ((self.offset + self.step * q.astype(np.float32)) - self.mean) * self.inv_std  # (T, F)
+
+    def __getitem__(self, i: int) -> dict:
+        it = self.items[i]
+        return {"id": it["id"], "text": it["text"], "feats": self.features(i), "tokens": it["tokens"],
+                "spans": it["spans"], "index": i}
+
+    def inventory(self) -> list[dict]:
+        """Rows of inventory.tsv: index, word, class, slot, exposure, group, phones."""
+        if self._inventory is None:
+            path = self.folder / "inventory.tsv"
+            lines = path.read_text(encoding="utf-8").splitlines()
+            head = lines[0].split("\t")
+            self._inventory = [dict(zip(head, ln.split("\t"))) for ln in lines[1:]]
+        return self._inventory
+
+    def biasing_list(self, i: int, size: int, confusable: bool = False) -> list[str]:
+        """The utterance's rare words, then distractors, `size` entries in all (nested across sizes)."""
+        if size == 0:
+            return []
+        kind = "confusable" if confusable else "lists"
+        if kind not in self._lists:
+            path = self.folder / f"{self.split}.{kind}.npy"
+            if not path.is_file():
+                raise CorpusError(f"{path}: split {self.split!r} carries no biasing lists")
+            self._lists[kind] = np.load(path, mmap_mode="r")
+        rows = self._lists[kind]
+        if size > rows.shape[1] + 3:
+            raise CorpusError(f"list size {size} exceeds this corpus's largest lists ({rows.shape[1]})")
+        own = list(dict.fromkeys(sp["word"] for sp in self.items[i]["spans"]))
+        inv = self.inventory()
+        return own + [inv[int(j)]["word"] for j in rows[i][: max(size - len(own), 0)]]
+
+
+class LengthBuckets(torch.utils.data.Sampler):
+    """Batches of similar length: sort within random buckets, shuffle batch order (seeded per epoch)."""
+
+    def __init__(self, lengths: np.ndarray, batch_size: int, bucket_batches: int, shuffle: bool, seed: int = 0):
+        self.lengths, self.batch_size, self.bucket = lengths, batch_size, batch_size * bucket_batches
+        self.shuffle, self.seed, self.epoch = shuffle, seed, 0
+
+    def __iter__(self):
+        rng = np.random.default_rng([self.seed, self.epoch])
+        self.epoch += 1
+        order = rng.permutation(len(self.lengths)) if self.shuffle else np.arange(len(self.lengths))
+        batches = []
+        for s in range(0, len(order), self.bucket):
+            chunk = order[s: s + self.bucket]
+            chunk = chunk[np.argsort(self.lengths[chunk], kind="stable")]
+            batches += [chunk[k: k + self.batch_size].tolist() for k in range(0, len(chunk), self.batch_size)]
+        if self.shuffle:
+            batches = [batches[i] for i in rng.permutation(len(batches))]
+        return iter(batches)
+
+    def __len__(self) -> int:
+        return (len(self.lengths) + self.batch_size - 1) // self.batch_size
+
+
+def collate(items: list[dict]) -> dict:
+    B = len(items)
+    T = max(len(it["feats"]) for it in items)
+    U = max(max(len(it["tokens"]) for it in items), 1)
+    F = items[0]["feats"].shape[1]
+    feats = np.zeros((B, T, F), dtype=np.float32)
+    targets = torch.zeros(B, U, dtype=torch.long)
+    for b, it in enumerate(items):
+        feats[b, : len(it["feats"])] = it["feats"]
+        targets[b, : len(it["tokens"])] = torch.as_tensor(it["tokens"])
+    batch = {
+        "feats": torch.from_numpy(feats),  # (B, T, F)
+        "feat_lens": torch.tensor([len(it["feats"]) for it in items]),
+        "targets": targets,  # (B, U)
+        "target_lens": torch.tensor([len(it["tokens"]) for it in items]),
+        "ids": [it["id"] for it in items],
+        "texts": [it["text"] for it in items],
+        "spans": [it["spans"] for it in items],
+        "index": [it["index"] for it in items],
+    }
+    if "list" in items[0]:
+        batch["lists"] = [it["list"] for it in items]
+    return batch
+
+
+def loader(split: CorpusSplit, batch_size: int, shuffle: bool = False, bucket_batches: int = 20,
+           seed: int = 0, transform=None) -> torch.utils.data.DataLoader:
+    dataset = split if transform is None else _Mapped(split, transform)
+    sampler = LengthBuckets(split.lengths(), batch_size, bucket_batches, shuffle, seed)
+    return torch.utils.data.DataLoader(dataset, batch_sampler=sampler, collate_fn=collate, num_workers=0)
+
+
+class _Mapped(torch.utils.data.Dataset):
+    def __init__(self, base, fn):
+        self.base, self.fn = base, fn
+
+    def __len__(self):
+        return len(self.base)
+
+    def __getitem__(self, i):
+        return self.fn(self.base[i])

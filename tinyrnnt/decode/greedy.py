@@ -1,0 +1,66 @@
+"""Batched greedy transducer decoding with a max-symbols-per-frame guard.
+
+At each encoder frame every utterance emits the joiner's best token; a
+non-blank token advances that utterance's predictor and stays on the frame,
+blank moves on. At most `max_symbols` tokens per frame (the guard against a
+model that never emits blank). The predictor runs only for the steps where
+some utterance emitted, batched over the batch.
+
+A biasing input can take part through `biaser` (see tinyrnnt.bias.base): it
+keeps a state per utterance, gives a joiner feature for the current label
+history, and advances with each emitted token, so decoding sees exactly the
+cue the model was trained with.
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import Tensor
+
+from tinyrnnt.text import BLANK
+
+
+def _select(mask: Tensor, new, old):
+    """Per-row choice between two states (tensors or tuples of LSTM state tensors)."""
+    if isinstance(new, tuple):
+        return tuple(_select(mask, n, o) for n, o in zip(new, old))
+    if new.dim() == 3 and new.shape[1] == mask.shape[0] and new.shape[0] != mask.shape[0]:
+        return torch.where(mask[None, :, None], new, old)  # LSTM state (layers, B, D)
+    shape = (-1,) + (1,) * (new.dim() - 1)
+    return torch.where(mask.view(shape), new, old)
+
+
+@torch.no_grad()
+def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4, biaser=None) -> list[list[int]]:
+    """Token ids per utterance (blanks removed)."""
+    enc, enc_lens = model.encoder(feats, feat_lens)  # (B, T', De)
+    B, T, _ = enc.shape
+    enc_p = model.joiner.enc_proj(enc)  # (B, T', Dj)
+    tokens = torch.full((B, 1), BLANK, dtype=torch.long, device=feats.device)
+    pred, state = model.predictor.step(tokens, None)  # (B, 1, Dp)
+    bstate = biaser.start(B) if biaser is not None else None
+    label = model.joiner.label_side(pred[:, 0], biaser.feature(bstate) if biaser is not None else None)  # (B, Dj)
+    emitted: list[tuple[Tensor, Tensor]] = []
+    for t in range(T):
+        still = t < enc_lens  # (B,)
+        if not still.any():
+            break
+        for _ in range(max_symbols):
+            logits = model.joiner.out(torch.tanh(enc_p[:, t] + label))  # (B, V)
+            best = logits.argmax(-1)  # (B,)
+            emit = still & (best != BLANK)
+            if not emit.any():
+                break
+            emitted.append((emit, best))
+            new_pred, new_state = model.predictor.step(best[:, None], state)
+            state = _select(emit, new_state, state)
+            if biaser is not None:
+                bstate = biaser.advance(bstate, best, emit)
+            new_label = model.joiner.label_side(new_pred[:, 0], biaser.feature(bstate) if biaser is not None else None)
+            label = _select(emit, new_label, label)
+            still = emit
+    if not emitted:
+        return [[] for _ in range(B)]
+    masks = torch.stack([m for m, _ in emitted]).T.cpu()  # (B, steps)
+    toks = torch.stack([k for _, k in emitted]).T.cpu()  # (B, steps)
+    return [toks[b][masks[b]].tolist() for b in range(B)]

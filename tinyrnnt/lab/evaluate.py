@@ -1,0 +1,83 @@
+"""Decode a split with a trained model and score it; write hypotheses and totals."""
+
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+
+import torch
+
+from tinyrnnt.data import CorpusSplit, loader
+from tinyrnnt.decode.greedy import greedy_decode
+from tinyrnnt.score import score_utterance, summarize
+from tinyrnnt.text import decode
+
+
+def write_atomic(path: str | Path, text: str) -> None:
+    """Write to a temporary file beside `path`, then rename: never a half-written file."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(path)
+
+
+def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = False, biasing=None,
+             batch_size: int = 64, max_symbols: int = 4, limit: int | None = None) -> tuple[list[dict], dict]:
+    """Per-utterance records and the corpus summary (score.summarize keys, plus timing)."""
+    model.eval()
+
+    def attach(item):
+        item["list"] = split.biasing_list(item["index"], list_size, confusable) if list_size else []
+        return item
+
+    records, decode_s, audio_s = [], 0.0, 0.0
+    hop = split.card["features"]["hop_ms"] / 1000.0
+    with torch.no_grad():
+        for batch in loader(split, batch_size, transform=attach):
+            if limit is not None and len(records) >= limit:
+                break
+            t0 = time.perf_counter()
+            biaser = biasing.decoder(batch) if biasing is not None and list_size else None
+            hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols, biaser=biaser)
+            decode_s += time.perf_counter() - t0
+            audio_s += float(batch["feat_lens"].sum()) * hop
+            for k, h in enumerate(hyps):
+                hyp = decode(h)
+                spans = batch["spans"][k]
+                classes = {sp["word"]: sp["class"] for sp in spans}
+                counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], classes)
+                records.append({"id": batch["ids"][k], "ref": batch["texts"][k], "hyp": hyp,
+                                "list_size": list_size, "spans": spans, "counts": counts})
+    summary = summarize(r["counts"] for r in records)
+    summary.update({"list_size": list_size, "confusable": confusable, "decode_seconds": round(decode_s, 3),
+                    "audio_seconds": round(audio_s, 1), "rtf": decode_s / max(audio_s, 1e-9)})
+    summary.update(exposure_recall(records))
+    return records, summary
+
+
+def exposure_recall(records: list[dict]) -> dict:
+    """Exact recall of rare words by exposure (frequent / few_shot / unseen_*), list or not.
+
+    A reference rare word counts as recalled when the hypothesis holds it as a word
+    at the aligned position (score.align); unlike biased-word recall this needs no list.
+    """
+    from tinyrnnt.score import align
+
+    hit, total = {}, {}
+    for r in records:
+        ref, hyp = r["ref"].split(), r["hyp"].split()
+        matched = {i for op, i, _ in align(ref, hyp) if op == "C"}
+        for sp in r["spans"]:
+            e = "unseen" if sp["exposure"].startswith("unseen") else sp["exposure"]
+            total[e] = total.get(e, 0) + 1
+            hit[e] = hit.get(e, 0) + (sp["index"] in matched)
+    return {f"rare_recall:{e}": hit[e] / total[e] for e in sorted(total)}
+
+
+def save_results(out_dir: str | Path, name: str, records: list[dict], summary: dict) -> None:
+    out_dir = Path(out_dir)
+    write_atomic(out_dir / f"{name}.hyps.jsonl",
+                 "".join(json.dumps({k: r[k] for k in ("id", "ref", "hyp", "list_size")}) + "\n" for r in records))
+    write_atomic(out_dir / f"{name}.scores.json", json.dumps(summary, indent=1) + "\n")

@@ -1,0 +1,178 @@
+"""The transducer (RNN-T, Graves 2012): encoder, predictor, additive joiner.
+
+Dimension glossary (used in every shape comment of the project):
+
+    B  batch                     T  feature frames (10 ms) or, after the encoder, encoder frames
+    F  feature bins (mels)       U  target tokens; label positions are 0..U, so U+1 of them
+    V  token inventory, blank included (tinyrnnt.text.VOCAB_SIZE)
+    D  hidden size (De encoder, Dp predictor, Dj joiner)
+    N  biasing-list entries
+
+Plain PyTorch; Lightning lives in `tinyrnnt.model.lightning` only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor, nn
+
+from tinyrnnt.text import BLANK, VOCAB_SIZE
+
+
+@dataclass
+class ModelConfig:
+    feature_bins: int = 80  # F, must match the corpus
+    stack_frames: int = 4  # frames concatenated before the first encoder layer (time reduction)
+    stack_after_first: int = 2  # further time reduction after the first recurrent layer (1 = none)
+    encoder_layers: int = 3
+    encoder_dim: int = 256  # De (per direction)
+    bidirectional: bool = False  # False = causal, streaming-capable encoder
+    predictor_dim: int = 256  # Dp
+    predictor_embed: int = 64
+    stateless_predictor: bool = False  # embedding of the last two tokens only, no LSTM
+    joiner_dim: int = 160  # Dj
+    dropout: float = 0.1
+
+    @property
+    def time_reduction(self) -> int:
+        return self.stack_frames * self.stack_after_first
+
+
+def stack_frames(x: Tensor, lengths: Tensor, k: int) -> tuple[Tensor, Tensor]:
+    """Concatenate k neighbouring frames: (B, T, D) -> (B, ceil(T/k), k*D).
+
+    >>> y, n = stack_frames(torch.ones(1, 5, 2), torch.tensor([5]), 2)
+    >>> tuple(y.shape), n.tolist()
+    ((1, 3, 4), [3])
+    """
+    if k == 1:
+        return x, lengths
+    B, T, D = x.shape
+    pad = (-T) % k
+    if pad:
+        x = nn.functional.pad(x, (0, 0, 0, pad))
+    x = x.reshape(B, (T + pad) // k, k * D)  # (B, T/k, k*D)
+    return x, (lengths + k - 1) // k
+
+
+class Encoder(nn.Module):
+    def __init__(self, cfg: ModelConfig):
+        super().__init__()
+        self.cfg = cfg
+        dirs = 2 if cfg.bidirectional else 1
+        self.input = nn.Linear(cfg.feature_bins * cfg.stack_frames, cfg.encoder_dim)
+        self.first = nn.LSTM(cfg.encoder_dim, cfg.encoder_dim, batch_first=True, bidirectional=cfg.bidirectional)
+        rest_in = cfg.encoder_dim * dirs * cfg.stack_after_first
+        self.rest = nn.LSTM(rest_in, cfg.encoder_dim, num_layers=cfg.encoder_layers - 1, batch_first=True,
+                            bidirectional=cfg.bidirectional, dropout=cfg.dropout if cfg.encoder_layers > 2 else 0.0)
+        self.dropout = nn.Dropout(cfg.dropout)
+        self.out_dim = cfg.encoder_dim * dirs
+
+    def forward(self, feats: Tensor, lengths: Tensor) -> tuple[Tensor, Tensor]:
+        B, T, F = feats.shape
+        x, lengths = stack_frames(feats, lengths, self.cfg.stack_frames)  # (B, T/4, 4F)
+        x = torch.relu(self.input(x))  # (B, T/4, De)
+        x, _ = self.first(x)  # (B, T/4, De*dirs)
+        x, lengths = stack_frames(self.dropout(x), lengths, self.cfg.stack_after_first)  # (B, T/8, 2*De*dirs)
+        x, _ = self.rest(x)  # (B, T/8, De*dirs)
+        return self.dropout(x), lengths
+
+
+class Predictor(nn.Module):
+    """Label history -> one vector per label position u = 0..U (blank doubles as start symbol)."""
+
+    def __init__(self, cfg: ModelConfig):
+        super().__init__()
+        self.cfg = cfg
+        self.embed = nn.Embedding(VOCAB_SIZE, cfg.predictor_embed)
+        if cfg.stateless_predictor:
+            self.mix = nn.Linear(2 * cfg.predictor_embed, cfg.predictor_dim)
+        else:
+            self.lstm = nn.LSTM(cfg.predictor_embed, cfg.predictor_dim, batch_first=True)
+        self.out_dim = cfg.predictor_dim
+
+    def forward(self, targets: Tensor) -> Tensor:
+        B, U = targets.shape
+        start = torch.full((B, 1), BLANK, dtype=targets.dtype, device=targets.device)
+        history = torch.cat([start, targets], dim=1)  # (B, U+1)
+        out, _ = self.step(history, None)
+        return out  # (B, U+1, Dp)
+
+    def step(self, tokens: Tensor, state):
+        """tokens (B, L) -> outputs (B, L, Dp) and the new state (for decoding, L = 1)."""
+        e = self.embed(tokens)  # (B, L, E)
+        if self.cfg.stateless_predictor:
+            prev = e[:, :1] * 0 if state is None else state
+            both = torch.cat([torch.cat([prev, e[:, :-1]], dim=1), e], dim=-1)  # (B, L, 2E)
+            return torch.tanh(self.mix(both)), e[:, -1:]
+        return self.lstm(e, state)
+
+
+class Joiner(nn.Module):
+    """Additive joiner: tanh(W_e enc + W_p pred [+ biasing feature]) -> V logits."""
+
+    def __init__(self, enc_dim: int, pred_dim: int, cfg: ModelConfig):
+        super().__init__()
+        self.enc_proj = nn.Linear(enc_dim, cfg.joiner_dim)
+        self.pred_proj = nn.Linear(pred_dim, cfg.joiner_dim)
+        self.out = nn.Linear(cfg.joiner_dim, VOCAB_SIZE)
+
+    def label_side(self, pred: Tensor, label_bias: Tensor | None = None) -> Tensor:
+        """Predictor projection per label position; THE place biasing features enter the joiner.
+
+        label_bias (B, U+1, Dj), e.g. a projected prefix-tree cue, is added to the
+        predictor side before the broadcast over T, so it costs O(B*U*Dj), not O(B*T*U*Dj).
+        """
+        p = self.pred_proj(pred)  # (B, U+1, Dj)
+        return p if label_bias is None else p + label_bias
+
+    def forward(self, enc: Tensor, pred: Tensor, label_bias: Tensor | None = None) -> Tensor:
+        e = self.enc_proj(enc)  # (B, T, Dj)
+        p = self.label_side(pred, label_bias)  # (B, U+1, Dj)
+        return self.out(torch.tanh(e[:, :, None, :] + p[:, None, :, :]))  # (B, T, U+1, V)
+
+
+class Transducer(nn.Module):
+    def __init__(self, cfg: ModelConfig):
+        super().__init__()
+        self.cfg = cfg
+        self.encoder = Encoder(cfg)
+        self.predictor = Predictor(cfg)
+        self.joiner = Joiner(self.encoder.out_dim, self.predictor.out_dim, cfg)
+
+    def forward(self, feats: Tensor, feat_lens: Tensor, targets: Tensor, label_bias: Tensor | None = None):
+        enc, enc_lens = self.encoder(feats, feat_lens)  # (B, T', De)
+        pred = self.predictor(targets)  # (B, U+1, Dp)
+        return self.joiner(enc, pred, label_bias), enc_lens  # (B, T', U+1, V)
+
+
+def count_parameters(model: nn.Module) -> int:
+    return sum(p.numel() for p in model.parameters())
+
+
+def lstm_flops(inp: int, hidden: int, steps: int, dirs: int = 1) -> int:
+    """Multiply-adds x2 of one LSTM layer over `steps` frames (four gates), forward pass."""
+    return 2 * 4 * hidden * (inp + hidden) * steps * dirs
+
+
+def training_flops(cfg: ModelConfig, T: int, U: int) -> int:
+    """Analytic FLOPs of one forward + backward pass for one utterance (backward = 2x forward).
+
+    Counts the matrix products (LSTMs, projections, joiner grid); elementwise work is left out.
+    """
+    dirs = 2 if cfg.bidirectional else 1
+    t1 = -(-T // cfg.stack_frames)
+    t2 = -(-t1 // cfg.stack_after_first)
+    f = 2 * cfg.feature_bins * cfg.stack_frames * cfg.encoder_dim * t1
+    f += lstm_flops(cfg.encoder_dim, cfg.encoder_dim, t1, dirs)
+    f += lstm_flops(cfg.encoder_dim * dirs * cfg.stack_after_first, cfg.encoder_dim, t2, dirs)
+    f += (cfg.encoder_layers - 2) * lstm_flops(cfg.encoder_dim * dirs, cfg.encoder_dim, t2, dirs)
+    if cfg.stateless_predictor:
+        f += 2 * 2 * cfg.predictor_embed * cfg.predictor_dim * (U + 1)
+    else:
+        f += lstm_flops(cfg.predictor_embed, cfg.predictor_dim, U + 1)
+    f += 2 * cfg.encoder_dim * dirs * cfg.joiner_dim * t2 + 2 * cfg.predictor_dim * cfg.joiner_dim * (U + 1)
+    f += 2 * cfg.joiner_dim * VOCAB_SIZE * t2 * (U + 1)
+    return 3 * f

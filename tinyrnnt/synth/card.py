@@ -1,0 +1,92 @@
+"""The corpus card: what a corpus holds, as JSON and as a printed table."""
+
+from __future__ import annotations
+
+from collections import Counter, defaultdict
+from pathlib import Path
+
+from tinyrnnt.synth.scenario import RARE_CLASSES
+
+
+def homophone_share(inventory) -> float:
+    """Share of invented names whose phone string has two or more spellings in the inventory."""
+    by_phones = defaultdict(set)
+    for rw in inventory:
+        by_phones[rw.phones].add(rw.word)
+    names = [rw for rw in inventory if rw.cls == "invented_name"]
+    if not names:
+        return 0.0
+    return sum(len(by_phones[rw.phones]) >= 2 for rw in names) / len(names)
+
+
+def make_card(cfg, scn, inventory, splits, stats, list_stats, seconds: float, folder: Path) -> dict:
+    hop_s = cfg.acoustics.hop_ms / 1000.0
+    exposure = Counter((rw.cls, rw.exposure) for rw in inventory)
+    train_counts = Counter(sp["word"] for s in splits["train"] for sp in s.spans)
+    card = {
+        "scenario": scn.name,
+        "seed": cfg.seed,
+        "build_seconds": round(seconds, 2),
+        "size_mb": round(sum(p.stat().st_size for p in folder.iterdir()) / 1e6, 1),
+        "features": {"mels": cfg.acoustics.n_mels, "hop_ms": cfg.acoustics.hop_ms, "dtype": "uint8",
+                     "offset": cfg.feature_offset, "step": cfg.feature_step,
+                     "mean": [round(float(x), 4) for x in stats["train"]["mean"]],
+                     "std": [round(float(x), 4) for x in stats["train"]["std"]]},
+        "inventory": {
+            "rare_words": len(inventory),
+            "invented_names": sum(rw.cls == "invented_name" for rw in inventory),
+            "name_homophone_share": round(homophone_share(inventory), 4),
+            "by_class_and_exposure": {f"{c}/{e}": n for (c, e), n in sorted(exposure.items())},
+            "few_shot_train_uses": dict(sorted(Counter(
+                train_counts[rw.word] for rw in inventory if rw.exposure == "few_shot").items())),
+        },
+        "splits": {},
+    }
+    common = set()
+    for split, sents in splits.items():
+        words = sum(len(s.words) for s in sents)
+        per_class = Counter(sp["class"] for s in sents for sp in s.spans)
+        utts_with = Counter(c for s in sents for c in {sp["class"] for sp in s.spans})
+        if split == "train":
+            common = {w for s in sents for i, w in enumerate(s.words) if i not in {sp["index"] for sp in s.spans}}
+        st = stats[split]
+        card["splits"][split] = {
+            "utterances": len(sents),
+            "hours": round(st["frames"] * hop_s / 3600, 3),
+            "mean_seconds": round(st["frames"] * hop_s / max(len(sents), 1), 2),
+            "words": words,
+            "clipped_share": round(st["clipped_values"] / max(st["frames"] * cfg.acoustics.n_mels, 1), 5),
+            "utterances_without_rare_words": sum(not s.spans for s in sents),
+            "rare_word_rate": {c: round(per_class[c] / max(words, 1), 4) for c in RARE_CLASSES},
+            "utterance_share_with_class": {c: round(utts_with[c] / max(len(sents), 1), 4) for c in RARE_CLASSES},
+            "exposures": dict(Counter(sp["exposure"] for s in sents for sp in s.spans)),
+        }
+        if split in list_stats:
+            card["splits"][split]["lists"] = {"sizes": list(cfg.list_sizes), "max": cfg.max_list_size,
+                                              **list_stats[split]}
+    card["train_common_vocabulary"] = len(common)
+    return card
+
+
+def format_card(card: dict) -> str:
+    """A plain text table of the card's main figures."""
+    rows = [("split", "utts", "hours", "sec/utt", "no-rare", "name rate", "rare-word rate", "compound rate")]
+    for split, s in card["splits"].items():
+        r = s["rare_word_rate"]
+        rows.append((split, str(s["utterances"]), f"{s['hours']:.2f}", f"{s['mean_seconds']:.2f}",
+                     str(s["utterances_without_rare_words"]), f"{r['invented_name']:.3f}",
+                     f"{r['rare_word']:.3f}", f"{r['compound']:.3f}"))
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    lines = ["  ".join(c.rjust(w) for c, w in zip(row, widths)) for row in rows]
+    inv = card["inventory"]
+    lines += [
+        "",
+        f"scenario {card['scenario']}  seed {card['seed']}  size {card['size_mb']} MB  "
+        f"built in {card['build_seconds']} s",
+        f"rare words {inv['rare_words']} (invented names {inv['invented_names']}, "
+        f"share sharing their sound with another spelling {inv['name_homophone_share']:.3f})",
+        f"training common vocabulary {card['train_common_vocabulary']} words; "
+        f"few-shot uses in training {inv['few_shot_train_uses']}",
+        "inventory by class/exposure: " + ", ".join(f"{k} {v}" for k, v in inv["by_class_and_exposure"].items()),
+    ]
+    return "\n".join(lines)

@@ -1,0 +1,243 @@
+"""Build a synthetic corpus on disk: text, phones, frames, biasing lists, card.
+
+Layout of a corpus folder (all ours):
+
+    card.json                 counts, hours, rare-word rates, list statistics, feature scale
+    config.yaml               the corpus settings it was built from (with seed)
+    inventory.tsv             every rare word: index, word, class, slot, exposure, group, phones
+    <split>.jsonl             one utterance per line: id, text, frames, offset, speaker, spans
+    <split>.feats.npy         uint8 log-mel frames of the split, (total frames, mels); memory-mappable
+    <split>.lists.npy         uint16 (utterances, max list size) distractor indices into inventory.tsv
+    <split>.confusable.npy    the same, led by other spellings of the utterance's rare words
+
+A biasing list of size N for an utterance is its rare words followed by the
+first N - k distractors of its row (k = number of its distinct rare words), so
+lists of different sizes are nested. Splits: train, valid, test (familiar and
+few-shot names) and test_unseen (names never in training text).
+
+The whole folder is written under a temporary name and renamed into place; an
+existing corpus is replaced only when asked.
+"""
+
+from __future__ import annotations
+
+import json
+import multiprocessing as mp
+import os
+import shutil
+import sys
+import time
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, make_speakers
+from tinyrnnt.synth.scenario import load_scenario
+from tinyrnnt.synth.sentences import SEEN, RareWord, Sentence, SentenceMaker, TextConfig, build_inventory
+
+SPLITS = ("train", "valid", "test", "test_unseen")
+LIST_SPLITS = ("valid", "test", "test_unseen")
+# Entity exposures each split draws from; valid mixes seen and unseen-valid halves.
+SPLIT_EXPOSURES = {"train": SEEN, "test": SEEN, "test_unseen": ("unseen_test",)}
+CHUNK = 256  # utterances per rendering task; fixed so output does not depend on worker count
+
+
+@dataclass
+class CorpusConfig:
+    scenario: str = "ferry_network"  # name in synth_data/ or a path to a scenario YAML
+    seed: int = 0
+    train_utts: int = 12000
+    valid_utts: int = 400
+    test_utts: int = 1000
+    test_unseen_utts: int = 1000
+    train_speakers: int = 200
+    heldout_speakers: int = 40  # valid and test speakers, disjoint from training (common practice)
+    max_list_size: int = 5000
+    list_sizes: tuple[int, ...] = (0, 10, 100, 1000, 5000)  # sizes reports use; all <= max_list_size
+    feature_offset: float = -12.0  # uint8 storage: value = offset + step * byte
+    feature_step: float = 0.08
+    workers: int = 2
+    text: TextConfig = field(default_factory=TextConfig)
+    acoustics: AcousticConfig = field(default_factory=AcousticConfig)
+
+
+class CorpusExistsError(FileExistsError):
+    pass
+
+
+def _render_chunk(args):
+    phones, speaker_ids, seed = args
+    feats, _ = _RENDERER.render(phones, speaker_ids, np.random.default_rng(seed))
+    return feats
+
+
+def _init_worker(acoustics: AcousticConfig, speakers):
+    global _RENDERER
+    _RENDERER = Renderer(acoustics, speakers)
+
+
+def _progress(msg: str, quiet: bool) -> None:
+    if not quiet:
+        print(msg, file=sys.stderr, flush=True)
+
+
+def make_text(cfg: CorpusConfig):
+    """Scenario, inventory and the sentences of every split (deterministic in cfg.seed)."""
+    scn = load_scenario(cfg.scenario)
+    seeds = np.random.SeedSequence(cfg.seed).spawn(8)
+    inventory = build_inventory(scn, cfg.text, np.random.default_rng(seeds[0]))
+    maker = SentenceMaker(scn, inventory)
+    sizes = {"train": cfg.train_utts, "valid": cfg.valid_utts, "test": cfg.test_utts,
+             "test_unseen": cfg.test_unseen_utts}
+    splits: dict[str, list[Sentence]] = {}
+    for k, split in enumerate(SPLITS):
+        rng = np.random.default_rng(seeds[1 + k])
+        n = sizes[split]
+        sk = maker.skeletons(n, rng)
+        if split == "valid":
+            exposures = [SEEN if i % 2 == 0 else ("unseen_valid",) for i in range(n)]
+        else:
+            exposures = [SPLIT_EXPOSURES[split]] * n
+        splits[split] = maker.fill(sk, exposures, rng,
+                                   few_shot_counts=cfg.text.few_shot_count if split == "train" else None)
+    return scn, inventory, splits
+
+
+def _lists(sentences: list[Sentence], inventory: list[RareWord], index: dict[str, int],
+           max_size: int, rng: np.random.Generator, confusable: bool) -> np.ndarray:
+    """(utterances, max_size) distractor indices, never a word of the utterance."""
+    groups: dict[int, list[int]] = {}
+    for i, rw in enumerate(inventory):
+        groups.setdefault(rw.group, []).append(i)
+    n_inv = len(inventory)
+    if max_size > n_inv - 8:
+        raise ValueError(f"max_list_size {max_size} needs an inventory larger than {n_inv} words")
+    out = np.empty((len(sentences), max_size), dtype=np.uint16)
+    for u, s in enumerate(sentences):
+        own = {index[sp["word"]] for sp in s.spans}
+        siblings = [j for i in own for j in groups[inventory[i].group] if j not in own]
+        banned = own | set(siblings)
+        lead = list(rng.permutation(siblings)) if confusable else []
+        perm = rng.permutation(n_inv)
+        rest = perm[~np.isin(perm, list(banned))] if banned else perm
+        out[u] = np.concatenate([np.asarray(lead, dtype=np.int64), rest])[:max_size]
+    return out
+
+
+def _write_json(path: Path, obj) -> None:
+    path.write_text(json.dumps(obj, indent=1) + "\n", encoding="utf-8")
+
+
+def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False, quiet: bool = False) -> dict:
+    """Synthesize the corpus into out_dir; returns its card."""
+    import yaml
+
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not overwrite:
+        raise CorpusExistsError(f"{out_dir} already exists; pass overwrite to replace it")
+    t0 = time.perf_counter()
+    scn, inventory, splits = make_text(cfg)
+    _progress(f"text: {sum(len(v) for v in splits.values())} sentences, {len(inventory)} rare words "
+              f"({time.perf_counter() - t0:.1f} s)", quiet)
+    seeds = np.random.SeedSequence(cfg.seed).spawn(8)
+    spk_rng = np.random.default_rng(seeds[5])
+    speakers = make_speakers(cfg.train_speakers + cfg.heldout_speakers, spk_rng, cfg.acoustics)
+    index = {rw.word: i for i, rw in enumerate(inventory)}
+
+    out_dir.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out_dir.parent / f".{out_dir.name}.partial-{os.getpid()}"
+    if tmp.exists():
+        shutil.rmtree(tmp)
+    tmp.mkdir()
+    try:
+        stats = _write_splits(cfg, tmp, splits, speakers, spk_rng, t0, quiet)
+        list_rng = np.random.default_rng(seeds[6])
+        list_stats = {}
+        for split in LIST_SPLITS:
+            for confusable, suffix in ((False, "lists"), (True, "confusable")):
+                arr = _lists(splits[split], inventory, index, cfg.max_list_size, list_rng, confusable)
+                np.save(tmp / f"{split}.{suffix}.npy", arr)
+            list_stats[split] = {"utterances_with_rare_words": sum(bool(s.spans) for s in splits[split])}
+        with open(tmp / "inventory.tsv", "w", encoding="utf-8") as f:
+            f.write("index\tword\tclass\tslot\texposure\tgroup\tphones\n")
+            for i, rw in enumerate(inventory):
+                f.write(f"{i}\t{rw.word}\t{rw.cls}\t{rw.slot}\t{rw.exposure}\t{rw.group}\t{' '.join(rw.phones)}\n")
+        (tmp / "config.yaml").write_text(yaml.safe_dump(_plain(asdict(cfg)), sort_keys=False), encoding="utf-8")
+        from tinyrnnt.synth.card import make_card
+
+        card = make_card(cfg, scn, inventory, splits, stats, list_stats, time.perf_counter() - t0, tmp)
+        _write_json(tmp / "card.json", card)
+        if out_dir.exists():
+            old = out_dir.parent / f".{out_dir.name}.old-{os.getpid()}"
+            out_dir.rename(old)
+            tmp.rename(out_dir)
+            shutil.rmtree(old)
+        else:
+            tmp.rename(out_dir)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    card["build_seconds"] = round(time.perf_counter() - t0, 2)
+    return card
+
+
+def _plain(obj):
+    if isinstance(obj, dict):
+        return {k: _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    return obj
+
+
+def _write_splits(cfg, tmp: Path, splits, speakers, spk_rng, t0, quiet) -> dict:
+    """Render every split (in parallel chunks), quantise to uint8, write manifest and shards."""
+    seeds = np.random.SeedSequence([cfg.seed, 1]).spawn(len(SPLITS))
+    ctx = mp.get_context("fork")
+    stats = {}
+    pool = ctx.Pool(cfg.workers, _init_worker, (cfg.acoustics, speakers)) if cfg.workers > 1 else None
+    if pool is None:
+        _init_worker(cfg.acoustics, speakers)
+    try:
+        for k, split in enumerate(SPLITS):
+            sents = splits[split]
+            n = len(sents)
+            lo, hi = (0, cfg.train_speakers) if split == "train" else \
+                (cfg.train_speakers, cfg.train_speakers + cfg.heldout_speakers)
+            spk = spk_rng.integers(lo, hi, size=n)
+            chunk_seeds = seeds[k].spawn((n + CHUNK - 1) // CHUNK)
+            tasks = [([s.phones for s in sents[i:i + CHUNK]], spk[i:i + CHUNK].tolist(), chunk_seeds[i // CHUNK])
+                     for i in range(0, n, CHUNK)]
+            results = pool.imap(_render_chunk, tasks) if pool else map(_render_chunk, tasks)
+            shard, lengths = [], []
+            total = np.zeros(cfg.acoustics.n_mels)
+            total_sq = np.zeros(cfg.acoustics.n_mels)
+            clipped = 0
+            for feats in results:
+                for f in feats:
+                    q = np.round((f - cfg.feature_offset) / cfg.feature_step)
+                    clipped += int(((q < 0) | (q > 255)).sum())
+                    q = np.clip(q, 0, 255).astype(np.uint8)
+                    deq = cfg.feature_offset + cfg.feature_step * q.astype(np.float64)
+                    total += deq.sum(0)
+                    total_sq += (deq ** 2).sum(0)
+                    shard.append(q)
+                    lengths.append(len(q))
+                _progress(f"{split}: {len(lengths)}/{n} utterances ({time.perf_counter() - t0:.1f} s)", quiet)
+            frames = np.concatenate(shard) if shard else np.zeros((0, cfg.acoustics.n_mels), np.uint8)
+            np.save(tmp / f"{split}.feats.npy", frames)
+            offsets = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(int) if lengths else []
+            with open(tmp / f"{split}.jsonl", "w", encoding="utf-8") as f:
+                for i, s in enumerate(sents):
+                    f.write(json.dumps({"id": f"{split}-{i:06d}", "text": s.text, "frames": int(lengths[i]),
+                                        "offset": int(offsets[i]), "speaker": f"spk{int(spk[i]):03d}",
+                                        "spans": s.spans}) + "\n")
+            count = max(int(frames.shape[0]), 1)
+            mean = total / count
+            stats[split] = {"utterances": n, "frames": int(frames.shape[0]), "clipped_values": clipped,
+                            "mean": mean, "std": np.sqrt(np.maximum(total_sq / count - mean ** 2, 1e-8))}
+    finally:
+        if pool is not None:
+            pool.close()
+            pool.join()
+    return stats

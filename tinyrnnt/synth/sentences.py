@@ -1,0 +1,187 @@
+"""The rare-word inventory and the sentence generator.
+
+The inventory holds every rare word of the scenario with its class
+(invented name, rare dictionary word, compound), its phones, its homophone
+group (words sharing one phone string) and its *exposure*: how training text
+uses it. Whole homophone groups share one exposure:
+
+- ``frequent``: familiar entities, many times in training text;
+- ``few_shot``: one to three times in training text;
+- ``unseen_valid`` / ``unseen_test``: never in training text; the valid and
+  the unseen test split use them;
+- ``distractor``: never spoken; biasing lists draw on them.
+
+This module writes no files and renders no audio.
+"""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from tinyrnnt.synth.lexicon import common_words, compounds, invented_names
+from tinyrnnt.synth.scenario import FILLER_SLOT, Scenario
+
+EXPOSURES = ("frequent", "few_shot", "unseen_valid", "unseen_test", "distractor")
+SEEN = ("frequent", "few_shot")
+
+
+@dataclass
+class TextConfig:
+    n_invented_names: int = 5500  # spellings; the distractor pool needs >= 5000
+    n_compounds: int = 600
+    frequent_groups: int = 30  # homophone groups per class that training text uses often
+    few_shot_share: float = 0.15  # share of each class's groups seen 1..3 times in training
+    unseen_valid_share: float = 0.08
+    unseen_test_share: float = 0.2
+    few_shot_count: tuple[int, int] = (1, 3)  # occurrences of each few-shot word in training text
+
+
+@dataclass(frozen=True)
+class RareWord:
+    word: str
+    cls: str
+    slot: str
+    phones: tuple[str, ...]
+    group: int
+    exposure: str
+
+
+@dataclass
+class Sentence:
+    words: list[str]
+    phones: list[str]  # ARPAbet, "pau" at phrase boundaries; no word boundaries by design
+    spans: list[dict] = field(default_factory=list)  # rare words: index, word, class, exposure
+
+    @property
+    def text(self) -> str:
+        return " ".join(self.words)
+
+
+def build_inventory(scn: Scenario, cfg: TextConfig, rng: np.random.Generator) -> list[RareWord]:
+    """Every rare word of the scenario, grouped by sound, with its exposure."""
+    by_class: dict[str, list[tuple[tuple[str, ...], list[tuple[str, str]]]]] = defaultdict(list)
+    name_slots = [s for s, c in scn.entity_slots.items() if c == "invented_name" and s not in scn.user_entities]
+    for slot, words in scn.user_entities.items():
+        groups: dict[tuple[str, ...], list[tuple[str, str]]] = defaultdict(list)
+        for w in dict.fromkeys(words):
+            groups[tuple(scn.lexicon.phones(w))].append((w, slot))
+        by_class[scn.entity_slots[slot]].extend(groups.items())
+    if name_slots:
+        for i, g in enumerate(invented_names(cfg.n_invented_names, rng)):
+            slot = name_slots[i % len(name_slots)]
+            by_class["invented_name"].append((g.phones, [(s, slot) for s in g.spellings]))
+    for slot, cls in scn.entity_slots.items():
+        if slot in scn.user_entities:
+            continue
+        if cls == "rare_word":
+            by_class[cls].extend(((tuple(scn.lexicon.phones(w)), [(w, slot)]) for w in scn.rare_words))
+        elif cls == "compound":
+            for word, (a, b) in compounds(cfg.n_compounds, rng, scn.compound_parts):
+                phones = tuple(scn.lexicon.phones(a) + scn.lexicon.phones(b))
+                by_class[cls].append((phones, [(word, slot)]))
+    inventory: list[RareWord] = []
+    group_id = 0
+    for cls in sorted(by_class):
+        groups = by_class[cls]
+        order = rng.permutation(len(groups))
+        n = len(groups)
+        cuts = np.cumsum([min(cfg.frequent_groups, n // 4), round(cfg.few_shot_share * n),
+                          round(cfg.unseen_valid_share * n), round(cfg.unseen_test_share * n)])
+        for rank, gi in enumerate(order):
+            exposure = EXPOSURES[int(np.searchsorted(cuts, rank, side="right"))]
+            phones, members = groups[gi]
+            inventory.extend(RareWord(w, cls, slot, phones, group_id, exposure) for w, slot in members)
+            group_id += 1
+    return inventory
+
+
+class SentenceMaker:
+    """Fills templates; the caller says which exposures each split draws entities from."""
+
+    def __init__(self, scn: Scenario, inventory: list[RareWord]):
+        self.scn = scn
+        self.pools: dict[tuple[str, str], list[RareWord]] = defaultdict(list)
+        for rw in inventory:
+            self.pools[(rw.slot, rw.exposure)].append(rw)
+        fill = common_words(scn.filler_count)
+        self.filler = [w for w, _ in fill]
+        weights = np.array([f for _, f in fill]) ** scn.filler_weight_power
+        self.filler_p = weights / weights.sum()
+        self._phones: dict[str, list[str]] = {}
+
+    def phones(self, word: str) -> list[str]:
+        if word not in self._phones:
+            self._phones[word] = self.scn.lexicon.phones(word)
+        return self._phones[word]
+
+    def skeletons(self, n: int, rng: np.random.Generator) -> list[list[tuple[str, str]]]:
+        """n sentences with common words filled in and entity slots left open."""
+        out = []
+        templates = self.scn.templates
+        for ti in rng.integers(len(templates), size=n):
+            pieces: list[tuple[str, str]] = []
+            for kind, val in templates[ti].pieces:
+                if kind == "slot" and val == FILLER_SLOT:
+                    lo, hi = self.scn.filler_words
+                    k = int(rng.integers(lo, hi + 1))
+                    pieces += [("word", self.filler[i]) for i in rng.choice(len(self.filler), k, p=self.filler_p)]
+                elif kind == "slot" and val in self.scn.phrases:
+                    options = self.scn.phrases[val]
+                    pieces += [("word", w) for w in options[rng.integers(len(options))]]
+                else:
+                    pieces.append((kind, val))
+            out.append(pieces)
+        return out
+
+    def fill(self, skeletons: list[list[tuple[str, str]]], exposures: list[tuple[str, ...]],
+             rng: np.random.Generator, few_shot_counts: tuple[int, int] | None = None) -> list[Sentence]:
+        """Fill entity slots. exposures[i] lists the exposures sentence i may draw from.
+
+        With few_shot_counts, every few-shot word of the pools is placed that many
+        times (drawn per word) at random open slots of its kind, the rest from the
+        other exposures: exact counts, whatever the template mix.
+        """
+        open_slots: dict[str, list[tuple[int, int]]] = defaultdict(list)
+        for i, sk in enumerate(skeletons):
+            for j, (kind, val) in enumerate(sk):
+                if kind == "slot":
+                    open_slots[val].append((i, j))
+        chosen: dict[tuple[int, int], RareWord] = {}
+        if few_shot_counts is not None:
+            for slot, places in open_slots.items():
+                bag = [rw for rw in self.pools[(slot, "few_shot")]
+                       for _ in range(int(rng.integers(few_shot_counts[0], few_shot_counts[1] + 1)))]
+                if len(bag) > len(places) // 2:
+                    raise ValueError(f"slot {{{slot}}}: {len(bag)} few-shot uses need more sentences "
+                                     f"than {len(places)} open slots allow; raise the split size")
+                for k, p in zip(rng.choice(len(places), size=len(bag), replace=False), bag):
+                    chosen[places[int(k)]] = p
+        sentences = []
+        for i, sk in enumerate(skeletons):
+            words, phones, spans = [], [], []
+            for j, (kind, val) in enumerate(sk):
+                if kind == "pause":
+                    if phones and phones[-1] != "pau":
+                        phones.append("pau")
+                    continue
+                if kind == "word":
+                    words.append(val)
+                    phones += self.phones(val)
+                    continue
+                rw = chosen.get((i, j))
+                if rw is None:
+                    pool = [x for e in exposures[i] if e != "few_shot" or few_shot_counts is None
+                            for x in self.pools[(val, e)]]
+                    if not pool:
+                        raise ValueError(f"slot {{{val}}} has no words of exposure {exposures[i]}")
+                    rw = pool[int(rng.integers(len(pool)))]
+                spans.append({"index": len(words), "word": rw.word, "class": rw.cls, "exposure": rw.exposure})
+                words.append(rw.word)
+                phones += rw.phones
+            if phones and phones[-1] == "pau":
+                phones.pop()
+            sentences.append(Sentence(words, phones, spans))
+        return sentences
