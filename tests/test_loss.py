@@ -33,7 +33,7 @@ def _random_batch(gen, B, T, U, V, dtype=torch.float32, full=True):
 
 
 def _worked_logits(dtype=torch.float32):
-    # Graves 2012, section 2 (definition of the output lattice), worked by hand:
+    # Graves 2012 (definition of the output lattice), worked by hand:
     # T = 2, U = 1, target (a), tokens (blank, a, b). Two alignments:
     #   a, blank, blank: 0.3 (0,0) * 0.7 (0,1) * 0.8 (1,1) = 0.168
     #   blank, a, blank: 0.6 (0,0) * 0.4 (1,0) * 0.8 (1,1) = 0.192
@@ -77,7 +77,7 @@ def test_uniform_distribution_closed_form(implementation):
 
 @pytest.mark.parametrize("seed", range(6))
 def test_ours_matches_brute_force_on_tiny_ragged_batches(seed):
-    # Reference: explicit enumeration of every alignment (Graves 2012, section 2).
+    # Reference: explicit enumeration of every alignment (Graves 2012 definition).
     gen = torch.Generator().manual_seed(seed)
     B, T, U, V = 4, 4, 3, 3 + seed % 2
     logits, targets, logit_lengths, target_lengths = _random_batch(gen, B, T, U, V, torch.float64, full=False)
@@ -152,6 +152,20 @@ def test_extra_padding_changes_nothing():
         outside = torch.ones_like(grad_b[b], dtype=torch.bool)
         outside[:Tb, : Ub + 1] = False
         assert grad_b[b][outside].abs().max() == 0
+
+
+def test_torchaudio_wrapper_trims_extra_padding():
+    # Reference: torchaudio.functional.rnnt_loss on the tightly padded batch; the wrapper
+    # must trim padding beyond the longest lengths (torchaudio requires it).
+    gen = torch.Generator().manual_seed(4)
+    logits, targets, logit_lengths, target_lengths = _random_batch(gen, 3, 5, 3, 4)
+    padded = torch.nn.functional.pad(logits, (0, 0, 0, 2, 0, 3), value=9.0)  # (3, 8, 6, 4)
+    padded_targets = torch.nn.functional.pad(targets, (0, 2), value=-1)
+    tight = torchaudio_functional.rnnt_loss(logits, targets.int(), logit_lengths.int(), target_lengths.int(),
+                                            blank=BLANK, reduction="none")
+    wrapped = transducer_loss(padded, padded_targets, logit_lengths, target_lengths, reduction="none",
+                              implementation="torchaudio")
+    torch.testing.assert_close(wrapped, tight)
 
 
 def test_batch_of_one_equals_batched_result():

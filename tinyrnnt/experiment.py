@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from tinyrnnt import config as C
+from tinyrnnt.bias.base import BiasConfig
 from tinyrnnt.data import DataConfig
 from tinyrnnt.model.lightning import TrainConfig
 from tinyrnnt.model.transducer import ModelConfig
@@ -25,6 +26,7 @@ class ExperimentConfig:
     corpus: CorpusConfig = field(default_factory=CorpusConfig)  # used when the corpus must be built
     data: DataConfig = field(default_factory=DataConfig)
     model: ModelConfig = field(default_factory=ModelConfig)
+    bias: BiasConfig = field(default_factory=BiasConfig)  # kind "none" = the plain baseline
     train: TrainConfig = field(default_factory=TrainConfig)
     decode: DecodeConfig = field(default_factory=DecodeConfig)
 

@@ -37,9 +37,10 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
     B, T, _ = enc.shape
     enc_p = model.joiner.enc_proj(enc)  # (B, T', Dj)
     tokens = torch.full((B, 1), BLANK, dtype=torch.long, device=feats.device)
-    pred, state = model.predictor.step(tokens, None)  # (B, 1, Dp)
     bstate = biaser.start(B) if biaser is not None else None
-    label = model.joiner.label_side(pred[:, 0], biaser.feature(bstate) if biaser is not None else None)  # (B, Dj)
+    extra = biaser.features(bstate) if biaser is not None else {}
+    pred, state = model.predictor.step(tokens, None, _one_step(extra.get("predictor")))  # (B, 1, Dp)
+    label = model.joiner.label_side(pred[:, 0], extra.get("joiner"))  # (B, Dj)
     emitted: list[tuple[Tensor, Tensor]] = []
     for t in range(T):
         still = t < enc_lens  # (B,)
@@ -52,15 +53,19 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
             if not emit.any():
                 break
             emitted.append((emit, best))
-            new_pred, new_state = model.predictor.step(best[:, None], state)
-            state = _select(emit, new_state, state)
             if biaser is not None:
                 bstate = biaser.advance(bstate, best, emit)
-            new_label = model.joiner.label_side(new_pred[:, 0], biaser.feature(bstate) if biaser is not None else None)
-            label = _select(emit, new_label, label)
+                extra = biaser.features(bstate)
+            new_pred, new_state = model.predictor.step(best[:, None], state, _one_step(extra.get("predictor")))
+            state = _select(emit, new_state, state)
+            label = _select(emit, model.joiner.label_side(new_pred[:, 0], extra.get("joiner")), label)
             still = emit
     if not emitted:
         return [[] for _ in range(B)]
     masks = torch.stack([m for m, _ in emitted]).T.cpu()  # (B, steps)
     toks = torch.stack([k for _, k in emitted]).T.cpu()  # (B, steps)
     return [toks[b][masks[b]].tolist() for b in range(B)]
+
+
+def _one_step(x: Tensor | None) -> Tensor | None:
+    return None if x is None else x[:, None]  # (B, E) -> (B, 1, E)

@@ -23,7 +23,7 @@ def write_atomic(path: str | Path, text: str) -> None:
     tmp.replace(path)
 
 
-def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = False, biasing=None,
+def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = False,
              batch_size: int = 64, max_symbols: int = 4, limit: int | None = None) -> tuple[list[dict], dict]:
     """Per-utterance records and the corpus summary (score.summarize keys, plus timing)."""
     model.eval()
@@ -39,7 +39,8 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             if limit is not None and len(records) >= limit:
                 break
             t0 = time.perf_counter()
-            biaser = biasing.decoder(batch) if biasing is not None and list_size else None
+            # a biased model always decodes with its biaser; at N = 0 the lists are empty
+            biaser = model.bias.decoder(batch["lists"]) if model.bias is not None else None
             hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols, biaser=biaser)
             decode_s += time.perf_counter() - t0
             audio_s += float(batch["feat_lens"].sum()) * hop

@@ -44,6 +44,7 @@ class Recipe:
     shared: dict = field(default_factory=dict)
     runs: dict = field(default_factory=lambda: {"baseline": {}})
     evaluate: EvalPlan = field(default_factory=EvalPlan)
+    parallel: int = 1  # runs trained at once, each in its own process (give each train.threads=1)
 
 
 def read_recipe(path: str | Path | None) -> Recipe:
@@ -83,15 +84,17 @@ def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False) -> None:
 def run_recipe(path=None, overrides=(), quiet: bool = False) -> list[dict]:
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, save_results
-    from tinyrnnt.lab.train import load_model, train
+    from tinyrnnt.lab.train import load_model
 
     recipe = read_recipe(path)
-    rows = []
-    for run in recipe.runs:
-        cfg = run_config(recipe, run, overrides)
+    configs = {run: run_config(recipe, run, overrides) for run in recipe.runs}
+    for cfg in configs.values():
         ensure_corpus(cfg, quiet)
-        result = train(cfg, quiet=quiet)
-        model, _, _ = load_model(result.best_checkpoint)
+    results = train_all(configs, recipe.parallel, quiet)
+    rows = []
+    for run, cfg in configs.items():
+        result = results[run]
+        model, _, _ = load_model(result["best_checkpoint"])
         for split_name in recipe.evaluate.splits:
             split = CorpusSplit(cfg.data.corpus, split_name)
             for n in recipe.evaluate.list_sizes:
@@ -99,11 +102,34 @@ def run_recipe(path=None, overrides=(), quiet: bool = False) -> list[dict]:
                                             limit=recipe.evaluate.limit or None)
                 save_results(Path(cfg.run_dir) / "results", f"{split_name}.n{n}", records, summary)
                 rows.append({"run": run, "split": split_name, "list_size": n,
-                             "train_minutes": round(result.train_seconds / 60, 2),
+                             "train_minutes": round(result["train_seconds"] / 60, 2),
                              **{k: summary.get(k) for k in TABLE_KEYS}})
     write_table(Path(recipe.out_dir) / recipe.name, rows)
     print(markdown_table(rows))
     return rows
+
+
+def _train_one(cfg: ExperimentConfig, quiet: bool) -> dict:
+    from tinyrnnt.lab.train import train
+
+    r = train(cfg, quiet=quiet)
+    return {"best_checkpoint": str(r.best_checkpoint), "train_seconds": r.train_seconds, "steps": r.steps}
+
+
+def train_all(configs: dict[str, ExperimentConfig], parallel: int, quiet: bool) -> dict[str, dict]:
+    """Train every run; with parallel > 1, that many at once in separate processes.
+
+    On 2 cores two one-thread runs side by side finish sooner than the same runs
+    one after the other with two threads each (measured: a second thread buys ~1.3x).
+    """
+    if parallel <= 1 or len(configs) == 1:
+        return {run: _train_one(cfg, quiet) for run, cfg in configs.items()}
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(max_workers=parallel, mp_context=mp.get_context("spawn")) as pool:
+        futures = {run: pool.submit(_train_one, cfg, True) for run, cfg in configs.items()}
+        return {run: f.result() for run, f in futures.items()}
 
 
 def _fmt(v) -> str:

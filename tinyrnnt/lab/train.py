@@ -29,7 +29,7 @@ class TrainResult:
     clock: object = None  # the TrainingClock: utterances, frames, flops counted
 
 
-def train(cfg: ExperimentConfig, biasing=None, quiet: bool = False, resume: bool = False) -> TrainResult:
+def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> TrainResult:
     import lightning as L
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
     from lightning.pytorch.loggers import CSVLogger
@@ -46,13 +46,20 @@ def train(cfg: ExperimentConfig, biasing=None, quiet: bool = False, resume: bool
 
     train_split = CorpusSplit(cfg.data.corpus, "train")
     valid_split = CorpusSplit(cfg.data.corpus, "valid", limit=cfg.data.valid_subset or None)
-    wrap_train = biasing.train_transform(train_split) if biasing is not None else None
-    wrap_valid = biasing.eval_transform(valid_split) if biasing is not None else None
+    wrap_train = wrap_valid = None
+    if cfg.bias.kind != "none":
+        from tinyrnnt.bias.sampler import TrainingLists
+
+        wrap_train = TrainingLists(train_split.inventory(), cfg.bias.sampling, cfg.train.seed)
+
+        def wrap_valid(item):
+            item["list"] = valid_split.biasing_list(item["index"], cfg.bias.valid_list_size)
+            return item
     train_dl = loader(train_split, cfg.data.batch_size, shuffle=True, bucket_batches=cfg.data.bucket_batches,
                       seed=cfg.train.seed, transform=wrap_train)
     valid_dl = loader(valid_split, cfg.data.eval_batch_size, transform=wrap_valid)
 
-    task = TransducerTask(C.to_dict(cfg), biasing=biasing)
+    task = TransducerTask(C.to_dict(cfg))
     if cfg.train.init_from:
         weights, _ = read_checkpoint(cfg.train.init_from)
         missing, unexpected = task.load_state_dict(weights, strict=False)
@@ -97,7 +104,7 @@ def load_model(path: str | Path) -> tuple[Transducer, ExperimentConfig, dict]:
     """The transducer of a checkpoint, its config, and the full state dict (for biasing parts)."""
     state, cfg_dict = read_checkpoint(path)
     cfg = experiment_from_dict(cfg_dict)
-    model = Transducer(cfg.model)
+    model = Transducer(cfg.model, cfg.bias if cfg.bias.kind != "none" else None)
     own = {k[len("model."):]: v for k, v in state.items() if k.startswith("model.")}
     try:
         model.load_state_dict(own)

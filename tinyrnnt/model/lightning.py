@@ -16,7 +16,6 @@ import lightning as L
 import torch
 
 from tinyrnnt.decode.greedy import greedy_decode
-from tinyrnnt.model.loss import transducer_loss
 from tinyrnnt.model.transducer import Transducer, training_flops
 from tinyrnnt.score import cer
 from tinyrnnt.text import decode
@@ -24,9 +23,9 @@ from tinyrnnt.text import decode
 
 @dataclass
 class TrainConfig:
-    learning_rate: float = 2e-3
+    learning_rate: float = 3e-3
     warmup_steps: int = 200
-    decay_half_life_steps: int = 1500  # after warm-up the rate halves every this many steps
+    decay_half_life_steps: int = 2000  # after warm-up the rate halves every this many steps
     min_learning_rate: float = 1e-4
     grad_clip: float = 5.0
     time_masks: int = 0  # time masks per utterance (0 = off); masked frames set to 0 (the mean)
@@ -65,15 +64,14 @@ def spec_mask(feats, feat_lens, cfg: TrainConfig, generator=None):
 
 
 class TransducerTask(L.LightningModule):
-    def __init__(self, config: dict, biasing=None):
+    def __init__(self, config: dict):
         """config: the experiment config as a plain dict (saved in every checkpoint)."""
         super().__init__()
         from tinyrnnt.experiment import experiment_from_dict
 
         self.save_hyperparameters({"config": config})
         self.cfg = experiment_from_dict(config)
-        self.model = Transducer(self.cfg.model)
-        self.biasing = biasing
+        self.model = Transducer(self.cfg.model, self.cfg.bias if self.cfg.bias.kind != "none" else None)
         self.train_seconds = 0.0
         self._t0 = None
 
@@ -81,12 +79,13 @@ class TransducerTask(L.LightningModule):
         feats = batch["feats"]
         if stage == "train":
             feats = spec_mask(feats, batch["feat_lens"], self.cfg.train)
-        bias = self.biasing.training_feature(batch) if self.biasing is not None else None
-        logits, enc_lens = self.model(feats, batch["feat_lens"], batch["targets"], bias)  # (B, T', U+1, V)
-        loss = transducer_loss(logits, batch["targets"], enc_lens, batch["target_lens"],
-                               implementation=self.cfg.train.loss_implementation)
-        self.log(f"{stage}_loss", loss, prog_bar=True, batch_size=len(batch["ids"]))
-        return loss
+        out = self.model.losses(feats, batch["feat_lens"], batch["targets"], batch["target_lens"],
+                                batch.get("lists"), implementation=self.cfg.train.loss_implementation)
+        B = len(batch["ids"])
+        self.log(f"{stage}_loss", out["rnnt"], prog_bar=True, batch_size=B)
+        if "ctc" in out:
+            self.log(f"{stage}_ctc", out["ctc"], batch_size=B)
+        return out["loss"]
 
     def training_step(self, batch, batch_idx):
         return self._common_step(batch, "train")
@@ -99,7 +98,7 @@ class TransducerTask(L.LightningModule):
 
     def validation_step(self, batch, batch_idx):
         loss = self._common_step(batch, "valid")
-        biaser = self.biasing.decoder(batch) if self.biasing is not None else None
+        biaser = self.model.bias.decoder(batch["lists"]) if self.model.bias is not None else None
         hyps = greedy_decode(self.model, batch["feats"], batch["feat_lens"], biaser=biaser)
         errs = sum(cer(r, decode(h)) * len(r) for r, h in zip(batch["texts"], hyps))
         chars = sum(len(r) for r in batch["texts"])
@@ -153,7 +152,7 @@ class TrainingClock(L.Callback):
 def lr_at(step: int, t: TrainConfig) -> float:
     """The schedule's learning rate at a step (for plots and tests).
 
-    >>> lr_at(0, TrainConfig(warmup_steps=10)) == 2e-3 / 10
+    >>> lr_at(0, TrainConfig(warmup_steps=10)) == 3e-3 / 10
     True
     """
     if step < t.warmup_steps:

@@ -1,21 +1,23 @@
 """The transducer (RNN-T) loss: -log P(y | x) summed over every alignment.
 
 Standard loss from Graves 2012, "Sequence Transduction with Recurrent Neural
-Networks", section 2. The joiner gives, at every lattice node (t, u), a
+Networks". The joiner gives, at every lattice node (t, u), a
 distribution over V tokens; blank (index 0, `tinyrnnt.text.BLANK`) moves
-(t, u) -> (t + 1, u), the next reference label y_{u+1} moves (t, u) -> (t, u + 1).
-P(y | x) = alpha(T - 1, U) + lp_blank(T - 1, U) in log space.
+(t, u) -> (t + 1, u), the next reference label y_{u+1} moves (t, u) -> (t, u + 1),
+and log P(y | x) = alpha(T - 1, U) + lp_blank(T - 1, U).
 
 Our implementation runs the forward (alpha) and backward (beta) recursions in
-log space over anti-diagonals t + u = n, so there are T + U small vectorised
+log space over anti-diagonals n = t + u, so there are T + U small vectorised
 steps (each over the batch and the diagonal) instead of T * U scalar ones, and
-gives the analytic gradient (Graves 2012, eq. 16) instead of differentiating
-the recursion. torchaudio's `rnnt_loss` is wrapped as the outside reference.
+gives the analytic gradient (Graves 2012, training section) instead of differentiating
+through the recursion. torchaudio's `rnnt_loss` is wrapped as the outside reference.
 
 Dimensions: B batch, T frames, U labels (U + 1 label-history positions), V
-tokens with blank, N = T + U anti-diagonals.
+tokens with blank, R = T + U + 1 anti-diagonals of lattice nodes.
 
-This module deliberately does not do loss clamping, FastEmit or pruned losses.
+This module deliberately computes only the exact loss over the full lattice:
+no gradient clamping, no regularisers, no pruning of the lattice. Logits are
+assumed finite.
 """
 
 from __future__ import annotations
@@ -35,17 +37,16 @@ NEG_INF = float("-inf")
 
 
 def _logsumexp(x: Tensor, shift: Tensor) -> Tensor:
-    """logsumexp over the last dimension, shifted by one element of each row.
-
-    # subtle: torch.logsumexp shifts by the row maximum, and the maximum over a
-    # short last dimension is slow. Any element of the row is as good a shift: the
-    # sum is at least exp(0) = 1, so it cannot underflow, and a row whose sum
-    # overflows (some logit far above `shift`) is redone with torch.logsumexp.
+    """logsumexp over the last dimension, shifted by `shift`, one element of each row.
 
     >>> x = torch.tensor([[0.0, 1.0, 2.0], [0.0, 500.0, 0.0]])
     >>> torch.allclose(_logsumexp(x, x[:, 0]), torch.logsumexp(x, -1))
     True
     """
+    # subtle: torch.logsumexp shifts by the row maximum, and a maximum over a short
+    # last dimension is slow. Any element of the row is as good a shift: the sum is
+    # at least exp(0) = 1, so it cannot underflow, and a row whose sum overflows
+    # (some logit far above the shift) is redone with torch.logsumexp.
     total = (x - shift[..., None]).exp_().sum(-1)  # (...,)
     out = total.log_().add_(shift)
     bad = ~torch.isfinite(out)
@@ -216,7 +217,8 @@ class _TransducerLoss(torch.autograd.Function):
         T, U1 = ctx.sizes
         B, Tm, Um = log_p.shape[0], int(T_b.max()), int(U_b.max())
         beta = _beta(blank_d, label_d, T_b, U_b)  # (R, B, U+1)
-        # Graves 2012, eq. 16: d(-log P)/d lp of a move = -(share of P(y|x) through that move)
+        # Graves 2012 (training): d(-log P)/d lp of a move = -alpha * p(move) * beta / P,
+        # minus the share of P(y|x) carried by the paths through that move
         log_p = log_p[None, :, None]  # (1, B, 1)
         g = -grad_out[None, :, None]  # (1, B, 1)
         g_blank = torch.exp(alpha[:-1] + blank_d + beta[1:] - log_p) * g  # (R-1, B, U+1)
@@ -230,10 +232,11 @@ class _TransducerLoss(torch.autograd.Function):
 
 def _check_lengths(B: int, T: int, U: int, logit_lengths: Tensor, target_lengths: Tensor) -> None:
     for name, lengths, low, high in (("logit_lengths", logit_lengths, 1, T), ("target_lengths", target_lengths, 0, U)):
-        if lengths.shape != (B,):
-            raise ValueError(f"{name} has shape {tuple(lengths.shape)}; expected ({B},), one length per utterance")
-        if lengths.is_floating_point() or lengths.is_complex():
-            raise ValueError(f"{name} has dtype {lengths.dtype}; expected an integer dtype")
+        if lengths.shape != (B,) or lengths.is_floating_point() or lengths.is_complex():
+            raise ValueError(
+                f"{name} has shape {tuple(lengths.shape)} and dtype {lengths.dtype}; "
+                f"expected integers of shape ({B},), one length per utterance"
+            )
         if B and (int(lengths.min()) < low or int(lengths.max()) > high):
             raise ValueError(
                 f"{name} must lie in [{low}, {high}] (the padded size); got values from "
@@ -248,8 +251,8 @@ def transducer_loss_from_logprobs(
 
     Utterance b uses frames t < logit_lengths[b] and labels u < target_lengths[b];
     everything else is padding: it changes neither the loss nor the gradient, and
-    gets zero gradient. Worked example (Graves 2012, section 2): one frame, no
-    label, blank probability 0.5 gives -log 0.5.
+    gets zero gradient. Worked example from the definition: one frame, no label,
+    blank probability 0.5 gives -log 0.5.
 
     >>> lp_blank = torch.log(torch.tensor([[[0.5]]]))
     >>> transducer_loss_from_logprobs(lp_blank, lp_blank[:, :, :0], torch.tensor([1]), torch.tensor([0]))
@@ -262,6 +265,8 @@ def transducer_loss_from_logprobs(
             f"to match lp_blank of shape {tuple(lp_blank.shape)}"
         )
     _check_lengths(B, T, U1 - 1, logit_lengths, target_lengths)
+    if B == 0:
+        return lp_blank.sum((1, 2))  # (0,), still attached to the graph
     return _TransducerLoss.apply(lp_blank, lp_label, logit_lengths, target_lengths)
 
 
@@ -312,6 +317,8 @@ def transducer_loss(
         )
     # subtle: padding may hold any value (say -1); replace it so gathers stay in range
     targets = torch.where(real, targets, blank)
+    if logits.dtype in (torch.float16, torch.bfloat16):
+        logits = logits.float()  # the recursion sums hundreds of log-probs: keep 24 mantissa bits
     if implementation == "ours":
         lp_blank, lp_label = gather_logprobs(logits, targets, blank)
         losses = transducer_loss_from_logprobs(lp_blank, lp_label, logit_lengths, target_lengths)
@@ -323,8 +330,8 @@ def transducer_loss(
         losses = torchaudio.functional.rnnt_loss(
             logits[:, :Tm, : Um + 1].contiguous(),
             targets[:, :Um].to(torch.int32).contiguous(),
-            logit_lengths.to(torch.int32),
-            target_lengths.to(torch.int32),
+            logit_lengths.to(logits.device, torch.int32),
+            target_lengths.to(logits.device, torch.int32),
             blank=blank,
             reduction="none",
         )
@@ -335,7 +342,7 @@ def brute_force_loss(logprobs: Tensor, target: list[int], blank: int = BLANK) ->
     """-log P(y | x) for one utterance by listing every alignment (tiny cases only).
 
     logprobs (T, U+1, V) are normalised log-probabilities. An alignment is T blanks
-    and U labels in some order, ending with a blank (Graves 2012, section 2), so
+    and U labels in some order, ending with a blank (Graves 2012), so
     there are C(T + U - 1, U) of them. Uniform over V = 2 tokens, T = 2, U = 1:
     two alignments of probability 1/8 each, so -log(1/4).
 

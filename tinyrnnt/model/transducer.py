@@ -27,13 +27,17 @@ class ModelConfig:
     stack_frames: int = 4  # frames concatenated before the first encoder layer (time reduction)
     stack_after_first: int = 2  # further time reduction after the first recurrent layer (1 = none)
     encoder_layers: int = 3
-    encoder_dim: int = 256  # De (per direction)
-    bidirectional: bool = False  # False = causal, streaming-capable encoder
+    encoder_dim: int = 160  # De (per direction)
+    bidirectional: bool = True  # False = causal, streaming-capable encoder (cheaper, less accurate)
     predictor_dim: int = 256  # Dp
     predictor_embed: int = 64
     stateless_predictor: bool = False  # embedding of the last two tokens only, no LSTM
     joiner_dim: int = 160  # Dj
     dropout: float = 0.1
+    # Weight of an auxiliary CTC loss on the first encoder layer's output (0 = no CTC head).
+    # Intermediate CTC is common practice to make the encoder learn acoustics early;
+    # it only shapes training, decoding never uses the head.
+    ctc_weight: float = 0.3
 
     @property
     def time_reduction(self) -> int:
@@ -70,13 +74,17 @@ class Encoder(nn.Module):
         self.dropout = nn.Dropout(cfg.dropout)
         self.out_dim = cfg.encoder_dim * dirs
 
-    def forward(self, feats: Tensor, lengths: Tensor) -> tuple[Tensor, Tensor]:
+    def forward(self, feats: Tensor, lengths: Tensor, keep_first: bool = False):
+        """(B, T', De*dirs) and lengths; with keep_first also the first layer's output and lengths."""
         B, T, F = feats.shape
         x, lengths = stack_frames(feats, lengths, self.cfg.stack_frames)  # (B, T/4, 4F)
         x = torch.relu(self.input(x))  # (B, T/4, De)
-        x, _ = self.first(x)  # (B, T/4, De*dirs)
-        x, lengths = stack_frames(self.dropout(x), lengths, self.cfg.stack_after_first)  # (B, T/8, 2*De*dirs)
+        first, _ = self.first(x)  # (B, T/4, De*dirs)
+        first_lens = lengths
+        x, lengths = stack_frames(self.dropout(first), lengths, self.cfg.stack_after_first)  # (B, T/8, 2*De*dirs)
         x, _ = self.rest(x)  # (B, T/8, De*dirs)
+        if keep_first:
+            return self.dropout(x), lengths, first, first_lens
         return self.dropout(x), lengths
 
 
@@ -93,16 +101,21 @@ class Predictor(nn.Module):
             self.lstm = nn.LSTM(cfg.predictor_embed, cfg.predictor_dim, batch_first=True)
         self.out_dim = cfg.predictor_dim
 
-    def forward(self, targets: Tensor) -> Tensor:
+    def forward(self, targets: Tensor, extra: Tensor | None = None) -> Tensor:
         B, U = targets.shape
         start = torch.full((B, 1), BLANK, dtype=targets.dtype, device=targets.device)
         history = torch.cat([start, targets], dim=1)  # (B, U+1)
-        out, _ = self.step(history, None)
+        out, _ = self.step(history, None, extra)
         return out  # (B, U+1, Dp)
 
-    def step(self, tokens: Tensor, state):
-        """tokens (B, L) -> outputs (B, L, Dp) and the new state (for decoding, L = 1)."""
+    def step(self, tokens: Tensor, state, extra: Tensor | None = None):
+        """tokens (B, L) -> outputs (B, L, Dp) and the new state (for decoding, L = 1).
+
+        extra (B, L, E): a biasing feature added to the input embedding (predictor injection).
+        """
         e = self.embed(tokens)  # (B, L, E)
+        if extra is not None:
+            e = e + extra
         if self.cfg.stateless_predictor:
             prev = e[:, :1] * 0 if state is None else state
             both = torch.cat([torch.cat([prev, e[:, :-1]], dim=1), e], dim=-1)  # (B, L, 2E)
@@ -135,17 +148,62 @@ class Joiner(nn.Module):
 
 
 class Transducer(nn.Module):
-    def __init__(self, cfg: ModelConfig):
+    """Encoder + predictor + joiner, with one optional biasing input (a plug-in, tinyrnnt.bias)."""
+
+    def __init__(self, cfg: ModelConfig, bias=None):
         super().__init__()
+        from tinyrnnt.bias.base import build_biasing
+
         self.cfg = cfg
         self.encoder = Encoder(cfg)
         self.predictor = Predictor(cfg)
         self.joiner = Joiner(self.encoder.out_dim, self.predictor.out_dim, cfg)
+        self.bias = build_biasing(bias, cfg.joiner_dim, cfg.predictor_embed) if bias is not None else None
+        self.ctc_head = nn.Linear(self.encoder.out_dim, VOCAB_SIZE) if cfg.ctc_weight > 0 else None
 
-    def forward(self, feats: Tensor, feat_lens: Tensor, targets: Tensor, label_bias: Tensor | None = None):
-        enc, enc_lens = self.encoder(feats, feat_lens)  # (B, T', De)
-        pred = self.predictor(targets)  # (B, U+1, Dp)
-        return self.joiner(enc, pred, label_bias), enc_lens  # (B, T', U+1, V)
+    def forward(self, feats: Tensor, feat_lens: Tensor, targets: Tensor, target_lens: Tensor | None = None,
+                lists: list[list[str]] | None = None, label_bias: Tensor | None = None):
+        """Joiner logits (B, T', U+1, V) and encoder lengths.
+
+        With a biasing input and `lists` (one list of words per utterance), its
+        features enter at the configured injection point; `label_bias` adds a
+        ready-made joiner feature (B, U+1, Dj) directly.
+        """
+        logits, enc_lens, _ = self._run(feats, feat_lens, targets, target_lens, lists, label_bias, False)
+        return logits, enc_lens
+
+    def _run(self, feats, feat_lens, targets, target_lens, lists, label_bias, keep_first: bool):
+        extra = {}
+        if target_lens is None:
+            target_lens = torch.full((len(targets),), targets.shape[1])
+        if self.bias is not None and lists is not None:
+            extra = self.bias.features(lists, targets, target_lens)
+        enc, enc_lens, *first = self.encoder(feats, feat_lens, keep_first=keep_first)  # (B, T', De)
+        pred = self.predictor(targets, extra.get("predictor"))  # (B, U+1, Dp)
+        joiner_bias = extra.get("joiner")
+        if label_bias is not None:
+            joiner_bias = label_bias if joiner_bias is None else joiner_bias + label_bias
+        return self.joiner(enc, pred, joiner_bias), enc_lens, first  # (B, T', U+1, V)
+
+    def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
+        """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""
+        from tinyrnnt.model.loss import transducer_loss
+
+        keep = self.ctc_head is not None
+        logits, enc_lens, first = self._run(feats, feat_lens, targets, target_lens, lists, None, keep)
+        out = {"rnnt": transducer_loss(logits, targets, enc_lens, target_lens, implementation=implementation)}
+        out["loss"] = out["rnnt"]
+        if keep:
+            out["ctc"] = self.ctc_loss(first[0], first[1], targets, target_lens)
+            out["loss"] = out["rnnt"] + self.cfg.ctc_weight * out["ctc"]
+        return out
+
+    def ctc_loss(self, first: Tensor, first_lens: Tensor, targets: Tensor, target_lens: Tensor) -> Tensor:
+        """Auxiliary CTC (Graves et al., 2006) on the first encoder layer, mean over the batch."""
+        logp = torch.log_softmax(self.ctc_head(first), dim=-1).transpose(0, 1)  # (T/4, B, V)
+        loss = nn.functional.ctc_loss(logp, targets, first_lens, target_lens, blank=BLANK,
+                                      reduction="sum", zero_infinity=True)
+        return loss / len(targets)
 
 
 def count_parameters(model: nn.Module) -> int:

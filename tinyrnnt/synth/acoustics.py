@@ -30,7 +30,7 @@ from tinyrnnt.synth.phonetics import WOMEN_VOCAL_TRACT
 
 DB = np.log(10.0) / 10.0  # dB -> natural-log power
 GRID_HZ = 10.0  # linear frequency grid the spectra are made on
-_LEVEL = 0.0  # natural-log offset placing vowels near +6 and quiet noise near -10
+_LEVEL = 5.5  # natural-log offset: vowel peaks land near +5, quiet noise near -10
 _CHUNK = 256  # utterances rendered together; fixed so output never depends on how callers batch
 _STRESS_CODES = (None, "0", "1", "2")
 _ASPIRATE = -2  # part row placeholder: aspiration shaped by the next phone
@@ -74,7 +74,7 @@ class _Rows:
     """The parts of phonetics.parts_table() as arrays, one row per spectral target."""
 
     names: list
-    formants: np.ndarray  # (R, 5) men's Hz, 0 where unused
+    formants: np.ndarray  # (R, 5) men's Hz; unused slots hold 1000 and are masked out
     log_ratio: np.ndarray  # (R, 5) log(women / men)
     bandwidths: np.ndarray
     mask: np.ndarray
@@ -130,10 +130,15 @@ def _build_rows() -> _Rows:
                  aspiration_row=np.array([names.index(ph.aspiration_part(s)) for s in symbols]))
 
 
-def _resonance(grid, freq, bw):
-    """Log power gain of a pole pair at freq with bandwidth bw, 1 at 0 Hz (Klatt 1980 resonator)."""
-    f, F, b = grid[None, None, :], freq[..., None], bw[..., None] / 2
-    return 2 * np.log(F ** 2 + b ** 2) - np.log(((f - F) ** 2 + b ** 2) * ((f + F) ** 2 + b ** 2))
+def _resonances(grid, freq, bw, mask):
+    """Summed log power gains of pole pairs (rows, k) at freq with bandwidth bw, each 1 at 0 Hz
+    (the resonator of Klatt 1980); pairs where mask is 0 are left out. Returns (rows, grid)."""
+    f = grid.astype(np.float32)[None, None, :]
+    F, b2 = freq.astype(np.float32)[..., None], ((bw.astype(np.float32) / 2) ** 2)[..., None]
+    # subtle: one log of the product of all pairs, each divided by its value at 0 Hz so the
+    # float32 product stays within about 1e-30..1e30
+    pair = ((f - F) ** 2 + b2) * ((f + F) ** 2 + b2) / (F ** 2 + b2) ** 2
+    return -np.log(np.where(mask[..., None] > 0, pair, np.float32(1.0)).prod(1)).astype(np.float64)
 
 
 def _harmonics(grid, f0: float, ripple: float):
@@ -154,11 +159,11 @@ def _psd(rows: _Rows, spk, scales, grid, vowel_scale: float):
     F = (F[:, None, :] * scales[None, :, None]).reshape(-1, 5)
     rep = lambda x: np.repeat(x, V, axis=0)  # noqa: E731
     hz_scale = vt * np.tile(scales, len(rows.names))
-    shape = (_resonance(grid, F, rep(rows.bandwidths)) * rep(rows.mask)[..., None]).sum(1)
+    shape = _resonances(grid, F, rep(rows.bandwidths), rep(rows.mask))
     zero = rep(rows.zero) * hz_scale
-    has_zero = zero > 0
-    shape[has_zero] -= _resonance(grid, zero[has_zero, None], np.full((has_zero.sum(), 1), 100.0))[:, 0]
-    source = spk.tilt_db * DB * np.log2(np.maximum(grid, 150.0) / 150.0)
+    has = zero > 0
+    shape[has] -= _resonances(grid, zero[has, None], np.full((has.sum(), 1), 100.0), np.ones((has.sum(), 1)))
+    source = spk.tilt_db * DB * 0.5 * np.log2(1.0 + (grid / 100.0) ** 2)  # flat below ~100 Hz, then the tilt
 
     def level(psd, db, natural=None):
         total = psd.sum(1, keepdims=True) * GRID_HZ
@@ -203,7 +208,7 @@ class AcousticConfig:
     channel_tilt_db: float = 2.0  # per-utterance channel slope drawn from +- this, dB per octave around 1 kHz
     level_db: tuple[float, float] = (-6.0, 6.0)  # per-utterance gain
     female_share: float = 0.5  # share of female speakers made by make_speakers
-    log_floor: float = -14.0  # features are max(log power, this); natural log
+    log_floor: float = -14.0  # features are log(power + exp(this)): never below it; natural log
 
     def __post_init__(self):
         for f in fields(self):
@@ -222,6 +227,8 @@ class AcousticConfig:
 
 @dataclass(frozen=True)
 class Speaker:
+    """One voice; everything about it is baked into the Renderer's templates."""
+
     vocal_tract: float = 1.0  # formant scale: 1 = Peterson & Barney men, WOMEN_VOCAL_TRACT = women
     pitch_hz: float = 120.0
     tilt_db: float = -6.0  # voice source slope in dB/octave: glottal -12, lip radiation +6 (common practice)
@@ -249,6 +256,8 @@ def make_speakers(n: int, rng: np.random.Generator, cfg: AcousticConfig) -> list
 
 
 class Renderer:
+    """Phone sequences -> frames for a fixed set of speakers; spectra made once, here."""
+
     def __init__(self, cfg: AcousticConfig, speakers: list[Speaker]):
         if not speakers:
             raise ValueError("Renderer needs at least one speaker")
@@ -274,9 +283,8 @@ class Renderer:
         fft_fb = mel_filterbank(257, cfg.n_mels, cfg.sample_rate)
         k = np.maximum(fft_fb.sum(0) ** 2 / np.maximum((fft_fb ** 2).sum(0), 1e-12), 1.0)
         self._spread = np.sqrt(1 / k + 1 / (2 * k ** 2) + 1 / (6 * k ** 3)).astype(np.float32)
-        centres = np.linspace(0, 2595 * np.log10(1 + nyq / 700), cfg.n_mels + 2)[1:-1]
-        centres_hz = 700 * (10 ** (centres / 2595) - 1)
-        self._octaves = np.log2(np.maximum(centres_hz, 125.0) / 1000.0)  # for channel tilt
+        centres = mel_to_hz(np.linspace(0.0, hz_to_mel(nyq), cfg.n_mels + 2)[1:-1])
+        self._octaves = np.log2(np.maximum(centres, 125.0) / 1000.0)  # for channel tilt
         self._codes: dict[str, int] = {}
 
     def _code(self, utterances, flat: list[str]) -> np.ndarray:
@@ -311,13 +319,16 @@ class Renderer:
             starts += s
         return feats, starts
 
-    def _render_chunk(self, utts, speaker_ids, rng):
-        cfg, rows, V, M = self.cfg, self.rows, self.cfg.formant_variants, self.cfg.n_mels
+    def _timeline(self, utts, spk, rng):
+        """Draw durations and lay every part on the frame grid.
+
+        Slots are, per utterance, a leading edge silence, the phones and a trailing edge
+        silence; each slot expands into its parts (none for an unrealised pause).
+        """
+        cfg, rows = self.cfg, self.rows
         n_u = len(utts)
-        spk = np.asarray(speaker_ids, np.int64)
         lens = np.fromiter(map(len, utts), np.int64, n_u)
         codes = self._code(utts, list(itertools.chain.from_iterable(utts)))
-        # Slots: a leading edge silence, the phones, a trailing edge silence, per utterance.
         n_s = len(codes) + 2 * n_u
         slot_utt = np.repeat(np.arange(n_u), lens + 2)
         lead = np.cumsum(lens + 2) - lens - 2
@@ -329,26 +340,19 @@ class Renderer:
         slot_stress = np.zeros(n_s, np.int64)
         slot_stress[is_phone] = codes % 4
 
-        # Per-utterance and per-slot draws, always in this order (determinism).
-        spk_rate = np.array([s.rate for s in self.speakers])[spk]
-        rate = rng.uniform(*cfg.rate_range, n_u) * spk_rate
-        snr = rng.uniform(*cfg.snr_db, n_u)
-        gain = rng.uniform(*cfg.level_db, n_u)
-        tilt = rng.uniform(-cfg.channel_tilt_db, cfg.channel_tilt_db, n_u)
+        # Draws always in this order (determinism).
+        rate = rng.uniform(*cfg.rate_range, n_u) * np.array([s.rate for s in self.speakers])[spk]
         edges = rng.uniform(*cfg.edge_silence_ms, (n_u, 2))
         jitter = np.exp(cfg.duration_jitter * rng.standard_normal(n_s))
         pause_on = rng.random(n_s) < cfg.pause_prob
         pause_len = rng.uniform(*cfg.pause_ms, n_s)
-        variant = rng.integers(0, V, n_s)
+        variant = rng.integers(0, cfg.formant_variants, n_s)
 
         stress_factor = np.array([ph.STRESS_DURATION[s] for s in _STRESS_CODES])
         ms = rows.phone_ms[slot_sym] * stress_factor[slot_stress] * jitter / rate[slot_utt]
-        is_pause = slot_sym == rows.symbol_id[ph.PAUSE]
-        ms = np.where(is_pause, np.where(pause_on, pause_len, 0.0), ms)
+        ms = np.where(slot_sym == rows.symbol_id[ph.PAUSE], np.where(pause_on, pause_len, 0.0), ms)
         ms[lead], ms[trail] = edges[:, 0], edges[:, 1]
-        count = rows.part_count[slot_sym] * (ms > 0)  # an unrealised pause has no part
-
-        # Parts: expand slots into their parts; durations in frames, at least one frame each.
+        count = rows.part_count[slot_sym] * ((ms > 0) | ~is_phone)  # edges always; unrealised pauses never
         first = np.cumsum(count) - count  # first part of each slot (the next part for an empty slot)
         part_slot = np.repeat(np.arange(n_s), count)
         k = np.arange(len(part_slot)) - first[part_slot]
@@ -356,77 +360,91 @@ class Renderer:
         row = rows.part_row[psym, k]
         nxt = slot_sym[np.minimum(part_slot + 1, n_s - 1)]
         row = np.where(row == _ASPIRATE, rows.aspiration_row[nxt], row)
-        dur = np.maximum(ms[part_slot] * rows.part_frac[psym, k] / cfg.hop_ms, 1.0 + 1e-6)
+        dur = np.maximum(ms[part_slot] * rows.part_frac[psym, k] / cfg.hop_ms, 1.0 + 1e-6)  # frames
+
         fp, lp = first[lead], first[trail]
         cum = np.cumsum(dur)
-        part_utt = slot_utt[part_slot]
-        end = cum - (cum[fp] - dur[fp])[part_utt]
+        end = cum - (cum[fp] - dur[fp])[slot_utt[part_slot]]  # frames from the utterance start
         start = end - dur
         # subtle: the utterance ends on a whole frame, and the trailing silence keeps at least one frame
         n_frames = np.maximum(np.round(end[lp]), np.ceil(start[lp] - 0.5) + 1).astype(np.int64)
         end[lp] = n_frames
         # Frame t (centre t + 0.5) belongs to the part whose [start, end) holds its centre.
         s_int = np.ceil(start - 0.5).astype(np.int64)
-        e_int = np.empty_like(s_int)
-        e_int[:-1] = s_int[1:]
+        e_int = np.append(s_int[1:], 0)
         e_int[lp] = n_frames
-        per_part = e_int - s_int
-        pf = np.repeat(np.arange(len(dur)), per_part)  # part of each frame, (F,)
-        centre = s_int[pf] + (np.arange(len(pf)) - np.repeat(np.cumsum(per_part) - per_part, per_part)) + 0.5
+        not_lead = np.ones(n_s, bool)
+        not_lead[lead] = False
+        starts = np.split(s_int[first[not_lead]].astype(np.int32), np.cumsum(lens + 1)[:-1])
+        return dict(part_slot=part_slot, row=row, dur=dur, start=start, end=end, s_int=s_int,
+                    per_part=e_int - s_int, fp=fp, lp=lp, n_frames=n_frames, starts=starts,
+                    utt=slot_utt[part_slot], speech=is_phone[part_slot], variant=variant[part_slot])
 
-        # Coarticulation: blend with the nearer neighbour; width per boundary, glides centre to centre.
-        blend = rows.blend[row]
-        width = np.zeros(len(dur))
+    def _render_chunk(self, utts, speaker_ids, rng):
+        cfg, rows, M = self.cfg, self.rows, self.cfg.n_mels
+        n_u = len(utts)
+        spk = np.asarray(speaker_ids, np.int64)
+        p = self._timeline(utts, spk, rng)
+        snr = rng.uniform(*cfg.snr_db, n_u)
+        gain = rng.uniform(*cfg.level_db, n_u)
+        tilt = rng.uniform(-cfg.channel_tilt_db, cfg.channel_tilt_db, n_u)
+        per_part, dur, start, end = p["per_part"], p["dur"], p["start"], p["end"]
+        n_p = len(dur)
+        pf = np.repeat(np.arange(n_p), per_part)  # part of each frame, (F,)
+        centre = p["s_int"][pf] + (np.arange(len(pf)) - np.repeat(np.cumsum(per_part) - per_part, per_part)) + 0.5
+
+        # Coarticulation: blend each frame with its nearer neighbour part; the blend is 1/2 at the
+        # boundary and 0 at half the boundary's width away. Glide steps of one diphthong blend
+        # centre to centre.
+        blend = rows.blend[p["row"]]
+        width = np.zeros(n_p)
         width[1:] = cfg.coarticulation_ms / cfg.hop_ms * np.minimum(blend[1:], blend[:-1])
-        glide = np.zeros(len(dur), bool)
-        glide[1:] = rows.glide[row[1:]] & (part_slot[1:] == part_slot[:-1])
+        glide = np.zeros(n_p, bool)
+        glide[1:] = rows.glide[p["row"][1:]] & (p["part_slot"][1:] == p["part_slot"][:-1])
         width[glide] = np.minimum(dur[1:], dur[:-1])[glide[1:]]
-        width[fp] = 0.0
+        width[p["fp"]] = 0.0
         width_right = np.append(width[1:], 0.0)
-        width_right[lp] = 0.0
+        width_right[p["lp"]] = 0.0
         w_left = np.clip(0.5 - (centre - start[pf]) / np.maximum(width[pf], 1e-9), 0.0, 0.5)
         w_right = np.clip(0.5 - (end[pf] - centre) / np.maximum(width_right[pf], 1e-9), 0.0, 0.5)
         go_right = w_right >= w_left
-        other = np.clip(pf + np.where(go_right, 1, -1), 0, len(dur) - 1)
+        other = np.clip(pf + np.where(go_right, 1, -1), 0, n_p - 1)
         w = np.where(go_right, w_right, w_left).astype(np.float32)
-        flat_row = (spk[part_utt] * len(rows.names) + row) * V + variant[part_slot]
-        x = np.take(self.templates, flat_row[pf], axis=0)  # (F, M)
+        flat_row = (spk[p["utt"]] * len(rows.names) + p["row"]) * cfg.formant_variants + p["variant"]
+        x = np.take(self.templates, flat_row[pf], axis=0)  # (F, M) log power
         d = np.take(self.templates, flat_row[other], axis=0)
         d -= x
         d *= w[:, None]
         x += d
 
-        # subtle: frame-level randomness comes from random 80-wide windows into one fresh bank of
+        # subtle: frame-level randomness comes from random M-wide windows into one fresh bank of
         # normal draws (8 per frame), twenty times cheaper than a draw per value; overlapping
         # windows are rare and carry no phone information.
         n_f = len(pf)
         bank = rng.standard_normal(max(8 * n_f, 4 * M), dtype=np.float32)
         windows = np.lib.stride_tricks.sliding_window_view(bank, M)
         offsets = rng.integers(0, len(windows), (2, n_f))
-        frame_utt = np.repeat(np.arange(n_u), n_frames)
+        frame_utt = np.repeat(np.arange(n_u), p["n_frames"])
         channel = ((tilt[:, None] * self._octaves[None, :] + gain[:, None]) * DB).astype(np.float32)
         x += np.take(channel, frame_utt, axis=0)
-        z = np.take(windows, offsets[0], axis=0)
-        sd = np.multiply.outer(rows.noisy[row[pf]], self._spread)
+        z = windows[offsets[0]]
+        sd = np.multiply.outer(rows.noisy[p["row"][pf]], self._spread)
         sd += np.float32(cfg.spectral_jitter_db * DB)
         z *= sd
         x += z
-        np.exp(x, out=x)
-        # Noise level per utterance from the mean power of its phone frames and its SNR.
-        on = is_phone[part_slot[pf]].astype(np.float64)
-        power = x.sum(1)
-        num = np.bincount(frame_utt, power * on, n_u)
+        np.exp(x, out=x)  # power
+
+        # Noise: level from the mean power of the utterance's phone frames and its SNR.
+        on = p["speech"][pf].astype(np.float64)
+        num = np.bincount(frame_utt, x.sum(1) * on, n_u)
         den = np.bincount(frame_utt, on, n_u)
         ref = np.where(den > 0, num / np.maximum(den, 1), self._ref_power * np.exp(gain * DB))
         noise_rows = (self._log_noise - self._spread ** 2 / 2)[None, :] + np.log(ref / 10 ** (snr / 10))[:, None]
-        y = np.take(windows, offsets[1], axis=0)
-        y *= self._spread
+        y = windows[offsets[1]]
+        y *= self._spread  # periodogram-like spread, mean-preserving
         y += np.take(noise_rows.astype(np.float32), frame_utt, axis=0)
         np.exp(y, out=y)
         x += y
         x += np.float32(np.exp(cfg.log_floor))  # a soft floor: features never fall below log_floor
         np.log(x, out=x)
-
-        cut = np.cumsum(n_frames)[:-1]
-        phone_starts = s_int[first[~np.isin(np.arange(n_s), lead)]].astype(np.int32)
-        return np.split(x, cut), np.split(phone_starts, np.cumsum(lens + 1)[:-1])
+        return np.split(x, np.cumsum(p["n_frames"])[:-1]), p["starts"]

@@ -3,6 +3,7 @@
 Layout of a corpus folder (all ours):
 
     card.json                 counts, hours, rare-word rates, list statistics, feature scale
+    build.json                how long the build took (the only file that differs between identical builds)
     config.yaml               the corpus settings it was built from (with seed)
     inventory.tsv             every rare word: index, word, class, slot, exposure, group, phones
     <split>.jsonl             one utterance per line: id, text, frames, offset, speaker, spans
@@ -55,8 +56,8 @@ class CorpusConfig:
     heldout_speakers: int = 40  # valid and test speakers, disjoint from training (common practice)
     max_list_size: int = 5000
     list_sizes: tuple[int, ...] = (0, 10, 100, 1000, 5000)  # sizes reports use; all <= max_list_size
-    feature_offset: float = -12.0  # uint8 storage: value = offset + step * byte
-    feature_step: float = 0.08
+    feature_offset: float = -14.0  # uint8 storage: value = offset + step * byte (offset = renderer floor)
+    feature_step: float = 0.1  # natural-log units, about 0.43 dB
     workers: int = 2
     text: TextConfig = field(default_factory=TextConfig)
     acoustics: AcousticConfig = field(default_factory=AcousticConfig)
@@ -99,8 +100,10 @@ def make_text(cfg: CorpusConfig):
             exposures = [SEEN if i % 2 == 0 else ("unseen_valid",) for i in range(n)]
         else:
             exposures = [SPLIT_EXPOSURES[split]] * n
+        share = cfg.text.test_few_shot_share
         splits[split] = maker.fill(sk, exposures, rng,
-                                   few_shot_counts=cfg.text.few_shot_count if split == "train" else None)
+                                   few_shot_counts=cfg.text.few_shot_count if split == "train" else None,
+                                   weights={"frequent": 1.0 - share, "few_shot": share})
     return scn, inventory, splits
 
 
@@ -166,8 +169,10 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
         (tmp / "config.yaml").write_text(yaml.safe_dump(_plain(asdict(cfg)), sort_keys=False), encoding="utf-8")
         from tinyrnnt.synth.card import make_card
 
-        card = make_card(cfg, scn, inventory, splits, stats, list_stats, time.perf_counter() - t0, tmp)
+        card = make_card(cfg, scn, inventory, splits, stats, list_stats, tmp)
         _write_json(tmp / "card.json", card)
+        # Timing is the one thing that differs between identical builds: kept out of the card.
+        _write_json(tmp / "build.json", {"build_seconds": round(time.perf_counter() - t0, 2)})
         if out_dir.exists():
             old = out_dir.parent / f".{out_dir.name}.old-{os.getpid()}"
             out_dir.rename(old)

@@ -99,9 +99,9 @@ BURST_NOISE: dict[str, NoiseBand] = {
 # sh strongest of the obstruents, s next, f and th weakest; nasals and liquids a
 # few dB under vowels; voiced fricatives trade frication for voicing.
 FRICATION_DB = {"S": -12, "Z": -18, "SH": -9, "ZH": -15, "F": -21, "V": -26, "TH": -25, "DH": -29}
-VOICING_DB = {"Z": -17, "ZH": -17, "V": -16, "DH": -16, "closure": -24}  # low voice bar near 250 Hz
-BURST_DB = {"P": -17, "T": -11, "K": -12, "B": -22, "D": -16, "G": -17, "CH": -11, "JH": -16}
-ASPIRATION_DB = -18.0
+VOICING_DB = {"Z": -17, "ZH": -17, "V": -16, "DH": -16, "closure": -25}  # low voice bar near 250 Hz
+BURST_DB = {"P": -13, "T": -9, "K": -10, "B": -16, "D": -12, "G": -13, "CH": -9, "JH": -13}
+ASPIRATION_DB = -13.0
 SONORANT_DB = {"M": -11, "N": -13, "NG": -10, "R": -5, "L": -8, "W": -6, "Y": -7}
 
 # Parts of stops and affricates in ms: closure, burst, then voice onset time

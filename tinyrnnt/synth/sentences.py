@@ -37,6 +37,9 @@ class TextConfig:
     unseen_valid_share: float = 0.08
     unseen_test_share: float = 0.2
     few_shot_count: tuple[int, int] = (1, 3)  # occurrences of each few-shot word in training text
+    # Share of entity slots of the in-domain test (and seen half of valid) filled with few-shot
+    # words, the rest with familiar ones: about their share in training text.
+    test_few_shot_share: float = 0.15
 
 
 @dataclass(frozen=True)
@@ -137,8 +140,12 @@ class SentenceMaker:
         return out
 
     def fill(self, skeletons: list[list[tuple[str, str]]], exposures: list[tuple[str, ...]],
-             rng: np.random.Generator, few_shot_counts: tuple[int, int] | None = None) -> list[Sentence]:
+             rng: np.random.Generator, few_shot_counts: tuple[int, int] | None = None,
+             weights: dict[str, float] | None = None) -> list[Sentence]:
         """Fill entity slots. exposures[i] lists the exposures sentence i may draw from.
+
+        A slot first picks one of those exposures (by `weights`, else uniformly), then a
+        word of that exposure uniformly.
 
         With few_shot_counts, every few-shot word of the pools is placed that many
         times (drawn per word) at random open slots of its kind, the rest from the
@@ -156,7 +163,7 @@ class SentenceMaker:
                        for _ in range(int(rng.integers(few_shot_counts[0], few_shot_counts[1] + 1)))]
                 if len(bag) > len(places) // 2:
                     raise ValueError(f"slot {{{slot}}}: {len(bag)} few-shot uses need more sentences "
-                                     f"than {len(places)} open slots allow; raise the split size")
+                                     f"than {len(places)} open slots allow; raise train_utts or lower text.few_shot_share")
                 for k, p in zip(rng.choice(len(places), size=len(bag), replace=False), bag):
                     chosen[places[int(k)]] = p
         sentences = []
@@ -173,10 +180,13 @@ class SentenceMaker:
                     continue
                 rw = chosen.get((i, j))
                 if rw is None:
-                    pool = [x for e in exposures[i] if e != "few_shot" or few_shot_counts is None
-                            for x in self.pools[(val, e)]]
-                    if not pool:
+                    allowed = [e for e in exposures[i] if self.pools[(val, e)]
+                               and (e != "few_shot" or few_shot_counts is None)]
+                    if not allowed:
                         raise ValueError(f"slot {{{val}}} has no words of exposure {exposures[i]}")
+                    p = np.array([weights.get(e, 0.0) if weights else 1.0 for e in allowed])
+                    e = allowed[int(rng.choice(len(allowed), p=p / p.sum()))] if len(allowed) > 1 else allowed[0]
+                    pool = self.pools[(val, e)]
                     rw = pool[int(rng.integers(len(pool)))]
                 spans.append({"index": len(words), "word": rw.word, "class": rw.cls, "exposure": rw.exposure})
                 words.append(rw.word)

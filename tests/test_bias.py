@@ -1,0 +1,106 @@
+"""Biasing inputs as plug-ins: invariants for every registered module, the training-list sampler."""
+
+import pytest
+import torch
+
+from tinyrnnt.bias.base import REGISTRY, BiasConfig, ListSampling, build_biasing
+from tinyrnnt.bias.sampler import TrainingLists
+from tinyrnnt.decode.greedy import greedy_decode
+from tinyrnnt.model.transducer import ModelConfig, Transducer
+from tinyrnnt.text import SPACE, VOCAB_SIZE, encode
+
+SMALL = ModelConfig(encoder_dim=32, predictor_dim=32, predictor_embed=16, joiner_dim=24, encoder_layers=2)
+build_biasing(BiasConfig(kind="trie"), 8, 8)  # registers the built-in inputs
+KINDS = sorted(REGISTRY)
+LISTS = [["kell", "kelso", "a"], [], ["maren"]]
+TEXTS = ["call kelso a kell", "call maren", "maren kellx a"]
+
+
+def _batch():
+    ids = [encode(t) for t in TEXTS]
+    U = max(map(len, ids))
+    targets = torch.full((3, U), SPACE)
+    for b, x in enumerate(ids):
+        targets[b, : len(x)] = torch.tensor(x)
+    return targets, torch.tensor([len(x) for x in ids])
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("inject", ["joiner", "predictor", "both"])
+def test_zero_output_weights_give_the_baseline_logits(kind, inject):
+    torch.manual_seed(0)
+    biased = Transducer(SMALL, BiasConfig(kind=kind, inject=inject)).eval()
+    plain = Transducer(SMALL).eval()
+    plain.load_state_dict({k: v for k, v in biased.state_dict().items() if not k.startswith("bias.")})
+    for name, p in biased.bias.named_parameters():
+        if name.startswith("to_"):
+            torch.nn.init.zeros_(p)
+    targets, lens = _batch()
+    x, xl = torch.randn(3, 60, 80), torch.tensor([60, 50, 40])
+    a, _ = biased(x, xl, targets, lens, LISTS)
+    b, _ = plain(x, xl, targets, lens)
+    assert torch.equal(a, b)
+    assert greedy_decode(biased, x, xl, biaser=biased.bias.decoder(LISTS)) == greedy_decode(plain, x, xl)
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("inject", ["joiner", "predictor"])
+def test_decode_time_features_equal_training_features(kind, inject):
+    torch.manual_seed(1)
+    module = build_biasing(BiasConfig(kind=kind, inject=inject), 24, 16).eval()
+    targets, lens = _batch()
+    train_f = module.features(LISTS, targets, lens)[inject]  # (B, U+1, D)
+    dec = module.decoder(LISTS)
+    state = dec.start(3)
+    rows = [dec.features(state)[inject]]
+    for u in range(targets.shape[1]):
+        state = dec.advance(state, targets[:, u], torch.ones(3, dtype=torch.bool))
+        rows.append(dec.features(state)[inject])
+    dec_f = torch.stack(rows, dim=1)
+    for b in range(3):
+        n = int(lens[b]) + 1
+        assert torch.allclose(train_f[b, :n], dec_f[b, :n], atol=1e-6)
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_batch_of_one_equals_batched(kind):
+    torch.manual_seed(2)
+    module = build_biasing(BiasConfig(kind=kind), 24, 16).eval()
+    targets, lens = _batch()
+    full = module.features(LISTS, targets, lens)["joiner"]
+    for b in range(3):
+        one = module.features([LISTS[b]], targets[b: b + 1, : lens[b]], lens[b: b + 1])["joiner"]
+        assert torch.allclose(one[0], full[b, : int(lens[b]) + 1], atol=1e-6)
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_empty_list_gives_the_zero_cue_feature(kind):
+    module = build_biasing(BiasConfig(kind=kind), 24, 16).eval()
+    targets, lens = _batch()
+    f = module.features([[], [], []], targets, lens)["joiner"]
+    zero = module.encode(torch.zeros(VOCAB_SIZE))["joiner"]
+    assert torch.allclose(f, zero.expand_as(f))
+
+
+def test_unknown_kind_lists_the_registered_ones():
+    with pytest.raises(ValueError, match="registered: .*trie"):
+        build_biasing(BiasConfig(kind="magic"), 8, 8)
+
+
+INVENTORY = [{"word": w, "group": g, "exposure": e} for w, g, e in [
+    ("kell", "0", "frequent"), ("kel", "0", "distractor"), ("maren", "1", "few_shot"),
+    ("oske", "2", "unseen_test"), ("tova", "3", "distractor"), ("lund", "4", "distractor")]]
+
+
+def test_sampler_keeps_or_drops_true_words_and_never_offers_unseen_ones():
+    always = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(2, 2), confusable=0.0))
+    never = TrainingLists(INVENTORY, ListSampling(keep_true=0.0, empty_list=0.0, size=(2, 2), confusable=0.0))
+    for _ in range(50):
+        a = always.sample(["maren"])
+        assert "maren" in a and "oske" not in a and len(a) == 3
+        b = never.sample(["maren"])
+        assert "maren" not in b and "oske" not in b
+    confusing = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(0, 0), confusable=1.0))
+    assert sorted(confusing.sample(["kell"])) == ["kel", "kell"]
+    empty = TrainingLists(INVENTORY, ListSampling(empty_list=1.0))
+    assert empty.sample(["kell"]) == []

@@ -1,0 +1,56 @@
+"""Smoke test: synthesize, train (baseline and trie), decode, score, table — a tiny corpus in seconds."""
+
+import json
+
+import pytest
+
+from tinyrnnt.lab.recipes import run_recipe
+from tinyrnnt.lab.train import CheckpointError, load_model
+from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
+from tinyrnnt.synth.sentences import TextConfig
+
+TINY = dict(train_utts=160, valid_utts=16, test_utts=16, test_unseen_utts=16, max_list_size=200,
+            list_sizes=(0, 10), train_speakers=4, heldout_speakers=2, workers=1,
+            text=TextConfig(n_invented_names=500, n_compounds=150, few_shot_share=0.004))
+
+
+@pytest.fixture(scope="module")
+def corpus(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("smoke") / "corpus"
+    build_corpus(CorpusConfig(seed=5, **TINY), folder, quiet=True)
+    return folder
+
+
+def test_whole_pipeline(corpus, tmp_path):
+    recipe = tmp_path / "smoke.yaml"
+    recipe.write_text(f"""
+name: smoke
+out_dir: {tmp_path / 'runs'}
+shared:
+  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{minutes: 0.05, max_epochs: 2, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
+runs:
+  baseline: {{}}
+  trie: {{bias: {{kind: trie, cue_dim: 8}}}}
+evaluate: {{splits: [test_unseen], list_sizes: [0, 10]}}
+""")
+    rows = run_recipe(recipe, quiet=True)
+    assert {(r["run"], r["list_size"]) for r in rows} == {("baseline", 0), ("baseline", 10), ("trie", 0), ("trie", 10)}
+    table = json.loads((tmp_path / "runs" / "smoke" / "results.json").read_text())
+    assert table == json.loads(json.dumps(rows))
+    ckpt = tmp_path / "runs" / "smoke" / "trie" / "checkpoints" / "last.ckpt"
+    model, cfg, _ = load_model(ckpt)
+    assert cfg.bias.kind == "trie" and model.bias is not None
+    assert (ckpt.parent / "config.yaml").is_file()
+    hyps = (tmp_path / "runs" / "smoke" / "trie" / "results" / "test_unseen.n10.hyps.jsonl").read_text().splitlines()
+    assert len(hyps) == 16
+
+
+def test_damaged_checkpoint_is_one_clear_sentence(tmp_path):
+    bad = tmp_path / "broken.ckpt"
+    bad.write_bytes(b"not a checkpoint")
+    with pytest.raises(CheckpointError, match="not a readable checkpoint"):
+        load_model(bad)
+    with pytest.raises(CheckpointError, match="not found"):
+        load_model(tmp_path / "missing.ckpt")

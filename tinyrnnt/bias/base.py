@@ -1,0 +1,106 @@
+"""The biasing-input plug-in interface and its registry.
+
+A biasing input turns an utterance's biasing list into a feature per
+label-history position u = 0..U that the model adds at one injection point:
+
+- "joiner": added to the joiner's predictor-side projection (B, U+1, Dj);
+- "predictor": added to the predictor's input embedding (B, U+1, E);
+- "both".
+
+One class per idea, registered by name, chosen by `bias.kind` in a recipe:
+
+    @register("my_idea")
+    class MyIdea(BiasingInput):
+        def features(self, lists, targets, target_lens) -> dict[str, Tensor]: ...
+        def decoder(self, lists) -> DecodeState-like object with start/advance/feature
+
+`features` returns {"joiner": (B, U+1, Dj)} and/or {"predictor": (B, U+1, E)}
+for training; `decoder(lists)` returns an object that keeps a per-hypothesis
+state while decoding (see `Biaser`) so decoding sees the features training saw.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from torch import Tensor, nn
+
+INJECTION_POINTS = ("joiner", "predictor", "both")
+REGISTRY: dict[str, type["BiasingInput"]] = {}
+
+
+@dataclass
+class ListSampling:
+    """Training-time lists, in the spirit of CLAS (Pundak et al., 2018): true words kept or dropped, plus distractors."""
+
+    keep_true: float = 0.6  # chance each reference rare word is put in the list
+    empty_list: float = 0.2  # chance an utterance gets no list at all (teaches trust in the sound)
+    size: tuple[int, int] = (5, 100)  # list size drawn uniformly in this range (before true words)
+    confusable: float = 0.1  # chance a kept word brings its other spellings along as distractors
+
+
+@dataclass
+class BiasConfig:
+    kind: str = "none"  # registered biasing input: "none" or one of REGISTRY
+    module: str = ""  # a Python module to import first, which registers your own biasing input
+    inject: str = "joiner"  # joiner | predictor | both
+    cue_dim: int = 64  # projection size of the cue before it meets the model
+    cue_dropout: float = 0.1  # chance the whole cue of an utterance is zeroed in training
+    word_start: str = "first_tokens"  # cue at word starts: first tokens of all listed words, or "none"
+    valid_list_size: int = 100  # list size of the valid split's lists during training
+    sampling: ListSampling = field(default_factory=ListSampling)
+
+
+def register(name: str):
+    def wrap(cls):
+        cls.name = name
+        REGISTRY[name] = cls
+        return cls
+
+    return wrap
+
+
+def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int) -> "BiasingInput | None":
+    import importlib
+
+    from tinyrnnt.bias import trie_cue  # noqa: F401  (registers the built-in inputs)
+
+    if cfg.kind == "none":
+        return None
+    if cfg.module:
+        importlib.import_module(cfg.module)
+    if cfg.kind not in REGISTRY:
+        raise ValueError(f"unknown biasing input {cfg.kind!r}; registered: {['none'] + sorted(REGISTRY)}")
+    if cfg.inject not in INJECTION_POINTS:
+        raise ValueError(f"bias.inject must be one of {INJECTION_POINTS}, got {cfg.inject!r}")
+    return REGISTRY[cfg.kind](cfg, joiner_dim, embed_dim)
+
+
+class BiasingInput(nn.Module):
+    name = "abstract"
+
+    def __init__(self, cfg: BiasConfig, joiner_dim: int, embed_dim: int):
+        super().__init__()
+        self.cfg = cfg
+        self.joiner_dim, self.embed_dim = joiner_dim, embed_dim
+
+    def features(self, lists: list[list[str]], targets: Tensor, target_lens: Tensor) -> dict[str, Tensor]:
+        raise NotImplementedError
+
+    def decoder(self, lists: list[list[str]]) -> "Biaser":
+        raise NotImplementedError
+
+
+class Biaser:
+    """Decode-time state holder: one state per hypothesis row."""
+
+    def start(self, B: int):
+        raise NotImplementedError
+
+    def advance(self, state, tokens: Tensor, emit: Tensor):
+        """New state after `tokens` (B,) were emitted where `emit` (B,) is true."""
+        raise NotImplementedError
+
+    def features(self, state) -> dict[str, Tensor]:
+        """{"joiner": (B, Dj)} and/or {"predictor": (B, E)} for the current label history."""
+        raise NotImplementedError
