@@ -29,7 +29,8 @@ def test_recipe_lists_differences_and_round_trips(tmp_path):
     recipe = tmp_path / "r.yaml"
     recipe.write_text("# demo\nmodel:\n  joiner_dim: 96\n")
     cfg = load_experiment(recipe, ["train.seed=4"])
-    assert cfg.model.joiner_dim == 96 and cfg.train.seed == 4 and cfg.model.encoder_dim == 256
+    assert cfg.model.joiner_dim == 96 and cfg.train.seed == 4
+    assert cfg.model.encoder_dim == ExperimentConfig().model.encoder_dim  # untouched keys keep defaults
     C.save(cfg, tmp_path / "saved.yaml")
     again = load_experiment(tmp_path / "saved.yaml")
     assert again == cfg

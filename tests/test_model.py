@@ -51,3 +51,26 @@ def test_greedy_batch_equals_one_by_one_and_respects_guard():
         assert single[0] == batched[b]
     _, enc_lens = m.encoder(x, xl)
     assert all(len(h) <= 2 * int(n) for h, n in zip(batched, enc_lens))
+
+
+def test_stateless_predictor_and_causal_encoder_decode():
+    torch.manual_seed(3)
+    cfg = ModelConfig(encoder_dim=16, predictor_dim=16, predictor_embed=8, joiner_dim=12, encoder_layers=2,
+                      stateless_predictor=True, bidirectional=False)
+    m = Transducer(cfg).eval()
+    x, xl = torch.randn(2, 40, 80), torch.tensor([40, 30])
+    out = m.losses(x, xl, torch.randint(3, VOCAB_SIZE, (2, 4)), torch.tensor([4, 3]))
+    assert torch.isfinite(out["loss"]) and "ctc" in out
+    batched = greedy_decode(m, x, xl)
+    assert greedy_decode(m, x[1:, :30], xl[1:]) == batched[1:]
+
+
+def test_causal_encoder_ignores_the_future():
+    torch.manual_seed(4)
+    m = Transducer(ModelConfig(encoder_dim=16, encoder_layers=2, bidirectional=False, dropout=0.0)).eval()
+    x = torch.randn(1, 64, 80)
+    y = x.clone()
+    y[:, 48:] = torch.randn(1, 16, 80)  # change only the last 16 frames (the last 2 encoder frames)
+    a, _ = m.encoder(x, torch.tensor([64]))
+    b, _ = m.encoder(y, torch.tensor([64]))
+    assert torch.equal(a[:, :6], b[:, :6]) and not torch.equal(a[:, 6:], b[:, 6:])

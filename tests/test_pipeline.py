@@ -32,7 +32,7 @@ shared:
   train: {{minutes: 0.05, max_epochs: 2, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
 runs:
   baseline: {{}}
-  trie: {{bias: {{kind: trie, cue_dim: 8}}}}
+  trie: {{bias: {{kind: trie, cue_dim: 8}}, train: {{init_from: "run:baseline"}}}}
 evaluate: {{splits: [test_unseen], list_sizes: [0, 10]}}
 """)
     rows = run_recipe(recipe, quiet=True)

@@ -141,7 +141,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(fn=_score)
 
     e = sub.add_parser("experiment", help="run a recipe end to end: corpus, training, evaluation, table")
-    e.add_argument("recipe", nargs="?", default=None, help="recipe YAML (default: the built-in baseline)")
+    e.add_argument("recipe", nargs="?", default=None, help="recipe YAML (default: recipes/trie_vs_baseline.yaml)")
     e.add_argument("--quiet", action="store_true")
     e.add_argument("settings", nargs="*", help="section.key=value overrides for every model of the recipe")
     e.set_defaults(fn=_experiment)

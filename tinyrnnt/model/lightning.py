@@ -40,7 +40,8 @@ class TrainConfig:
     validate_every_steps: int = 300
     early_stop_patience: int = 0  # validations without CER improvement before stopping (0 = off)
     snapshot_minutes: float = 1.0  # keep a copy of the weights every this many training minutes (0 = off)
-    init_from: str = ""  # checkpoint to start from (weights only; new parts keep their init)
+    init_from: str = ""  # checkpoint to start from (weights only; new parts keep their init);
+    # in a recipe, "run:NAME" means the best checkpoint of the earlier run NAME
     trainer: dict = field(default_factory=dict)  # passed to lightning.Trainer unchanged
 
 

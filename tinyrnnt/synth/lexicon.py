@@ -114,7 +114,9 @@ def zipf(word: str) -> float:
 
 
 def strip_stress(phones: list[str]) -> list[str]:
-    """>>> strip_stress(["HH", "AA1", "R", "B", "ER0"])
+    """Drop cmudict's stress digits.
+
+    >>> strip_stress(["HH", "AA1", "R", "B", "ER0"])
     ['HH', 'AA', 'R', 'B', 'ER']
     """
     return [p.rstrip("012") for p in phones]
