@@ -33,8 +33,8 @@ REGISTRY: dict[str, type["BiasingInput"]] = {}
 class ListSampling:
     """Training-time lists, in the spirit of CLAS (Pundak et al., 2018): true words kept or dropped, plus distractors."""
 
-    keep_true: float = 0.6  # chance each reference rare word is put in the list
-    empty_list: float = 0.2  # chance an utterance gets no list at all (teaches trust in the sound)
+    keep_true: float = 0.85  # chance each reference rare word is put in the list
+    empty_list: float = 0.1  # chance an utterance gets no list at all (teaches trust in the sound)
     size: tuple[int, int] = (5, 100)  # list size drawn uniformly in this range (before true words)
     confusable: float = 0.1  # chance a kept word brings its other spellings along as distractors
 

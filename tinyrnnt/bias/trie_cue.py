@@ -16,6 +16,8 @@ from tinyrnnt.bias.base import Biaser, BiasingInput, register
 from tinyrnnt.bias.trie import BatchedTrees, PrefixTree, training_cue
 from tinyrnnt.text import VOCAB_SIZE
 
+CACHE_NODES = 500_000
+
 
 @register("trie")
 class TrieCue(BiasingInput):
@@ -25,13 +27,19 @@ class TrieCue(BiasingInput):
         self.to_joiner = nn.Linear(cfg.cue_dim, joiner_dim) if cfg.inject in ("joiner", "both") else None
         self.to_predictor = nn.Linear(cfg.cue_dim, embed_dim) if cfg.inject in ("predictor", "both") else None
         self._trees: dict[tuple[str, ...], PrefixTree] = {}
+        self._cached_nodes = 0
 
     def tree(self, words: list[str]) -> PrefixTree:
+        """The prefix tree of a list; validation lists repeat every validation, so trees are cached
+        (bounded by CACHE_NODES tree nodes, about 15 MB per 100k nodes)."""
         key = tuple(words)
         if key not in self._trees:
-            if len(self._trees) > 4096:  # eval lists repeat across runs; training lists rarely do
+            tree = PrefixTree(words)
+            if self._cached_nodes + tree.n_nodes > CACHE_NODES:
                 self._trees.clear()
-            self._trees[key] = PrefixTree(words)
+                self._cached_nodes = 0
+            self._trees[key] = tree
+            self._cached_nodes += tree.n_nodes
         return self._trees[key]
 
     def encode(self, cue: Tensor) -> dict[str, Tensor]:

@@ -57,8 +57,11 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
                 bstate = biaser.advance(bstate, best, emit)
                 extra = biaser.features(bstate)
             new_pred, new_state = model.predictor.step(best[:, None], state, _one_step(extra.get("predictor")))
-            state = _select(emit, new_state, state)
-            label = _select(emit, model.joiner.label_side(new_pred[:, 0], extra.get("joiner")), label)
+            new_label = model.joiner.label_side(new_pred[:, 0], extra.get("joiner"))
+            if B == 1 or bool(emit.all()):  # nothing to keep from the old state (always so at batch 1)
+                state, label = new_state, new_label
+            else:
+                state, label = _select(emit, new_state, state), _select(emit, new_label, label)
             still = emit
     if not emitted:
         return [[] for _ in range(B)]

@@ -80,6 +80,8 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*does not have many workers.*")
         warnings.filterwarnings("ignore", message=".*val_check_interval.*")
+        warnings.filterwarnings("ignore", message=".*exists and is not empty.*")  # our config.yaml sits there
+        warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
         trainer.fit(task, train_dl, valid_dl, ckpt_path="last" if resume and (ckpt_dir / "last.ckpt").exists() else None)
     return TrainResult(run, Path(best.best_model_path or ckpt_dir / "last.ckpt"), ckpt_dir / "last.ckpt",
                        task.train_seconds, trainer.global_step, clock.snapshots, clock)

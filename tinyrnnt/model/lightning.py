@@ -40,6 +40,7 @@ class TrainConfig:
     validate_every_steps: int = 300
     early_stop_patience: int = 0  # validations without CER improvement before stopping (0 = off)
     snapshot_minutes: float = 1.0  # keep a copy of the weights every this many training minutes (0 = off)
+    bias_lr_scale: float = 1.0  # learning-rate factor for the biasing input's own parameters
     init_from: str = ""  # checkpoint to start from (weights only; new parts keep their init);
     # in a recipe, "run:NAME" means the best checkpoint of the earlier run NAME
     trainer: dict = field(default_factory=dict)  # passed to lightning.Trainer unchanged
@@ -108,7 +109,10 @@ class TransducerTask(L.LightningModule):
 
     def configure_optimizers(self):
         t = self.cfg.train
-        opt = torch.optim.Adam(self.parameters(), lr=t.learning_rate)
+        bias = [p for n, p in self.named_parameters() if n.startswith("model.bias.")]
+        rest = [p for n, p in self.named_parameters() if not n.startswith("model.bias.")]
+        groups = [{"params": rest}] + ([{"params": bias, "lr": t.learning_rate * t.bias_lr_scale}] if bias else [])
+        opt = torch.optim.Adam(groups, lr=t.learning_rate)
 
         def factor(step: int) -> float:
             if step < t.warmup_steps:
