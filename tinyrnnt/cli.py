@@ -45,8 +45,13 @@ def _train(args) -> int:
     from tinyrnnt.lab.recipes import ensure_corpus
     from tinyrnnt.lab.train import train
 
+    from tinyrnnt.model.transducer import Transducer, count_parameters
+
     cfg = load_experiment(args.recipe, args.settings)
     ensure_corpus(cfg, quiet=args.quiet)
+    bias = cfg.bias if cfg.bias.kind != "none" else None
+    print(f"model: {count_parameters(Transducer(cfg.model, bias)):,} parameters "
+          f"(shapes: see the glossary in tinyrnnt/model/transducer.py)")
     result = train(cfg, quiet=args.quiet, resume=args.resume)
     print(f"trained {result.steps} steps in {result.train_seconds / 60:.1f} training minutes; "
           f"best checkpoint {result.best_checkpoint}")
@@ -74,7 +79,6 @@ def _score(args) -> int:
     from tinyrnnt.score import score_utterance, summarize
 
     counts = []
-    lists = {}
     if args.corpus:
         from tinyrnnt.data import CorpusSplit
 
@@ -90,7 +94,6 @@ def _score(args) -> int:
         lst = []
         if args.corpus and row.get("list_size"):
             lst = split.biasing_list(by_id[row["id"]], int(row["list_size"]))
-        lists[row.get("id")] = lst
         counts.append(score_utterance(ref, hyp, lst))
     print(json.dumps(summarize(counts), indent=1))
     return 0
