@@ -77,10 +77,8 @@ def bench_corpus(args) -> dict:
     small = dict(train_utts=300, valid_utts=40, test_utts=40, test_unseen_utts=40, max_list_size=500,
                  list_sizes=(0, 10, 100, 500), text=TextConfig(n_invented_names=800, few_shot_share=0.03))
     with tempfile.TemporaryDirectory() as tmp:
-        a = build_corpus(CorpusConfig(seed=7, **small), Path(tmp) / "a", quiet=True)
-        b = build_corpus(CorpusConfig(seed=7, **small), Path(tmp) / "b", quiet=True)
-        c = build_corpus(CorpusConfig(seed=8, **small), Path(tmp) / "c", quiet=True)
-        del a, b, c
+        for name, seed in (("a", 7), ("b", 7), ("c", 8)):
+            build_corpus(CorpusConfig(seed=seed, **small), Path(tmp) / name, quiet=True)
         da, db, dc = (folder_digest(Path(tmp) / x) for x in "abc")
     return {
         "synth_utt_per_s_1core": round(speed, 1),

@@ -43,14 +43,13 @@ def _coerce(value: Any, hint: Any, where: str) -> Any:
     if origin in (typing.Union, types.UnionType):
         if value is None and type(None) in args:
             return None
-        errors = []
         for a in args:
             if a is type(None):
                 continue
             try:
                 return _coerce(value, a, where)
-            except ConfigError as err:
-                errors.append(str(err))
+            except ConfigError:
+                pass
         raise ConfigError(f"{where}: {value!r} fits none of {hint}")
     if dataclasses.is_dataclass(hint):
         if isinstance(value, hint):

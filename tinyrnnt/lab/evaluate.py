@@ -58,11 +58,12 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
     return records, summary
 
 
-def exposure_recall(records: list[dict]) -> dict:
-    """Exact recall of rare words by exposure (frequent / few_shot / unseen_*), list or not.
+def exposure_recall(records: list[dict], cls: str | None = None) -> dict:
+    """Exact recall of rare words by exposure (frequent / few_shot / unseen), list or not.
 
     A reference rare word counts as recalled when the hypothesis holds it as a word
-    at the aligned position (score.align); unlike biased-word recall this needs no list.
+    at the aligned position (score.align); unlike biased-word recall this needs no
+    list. With `cls`, only rare words of that class count.
     """
     from tinyrnnt.score import align
 
@@ -71,6 +72,8 @@ def exposure_recall(records: list[dict]) -> dict:
         ref, hyp = r["ref"].split(), r["hyp"].split()
         matched = {i for op, i, _ in align(ref, hyp) if op == "C"}
         for sp in r["spans"]:
+            if cls is not None and sp["class"] != cls:
+                continue
             e = "unseen" if sp["exposure"].startswith("unseen") else sp["exposure"]
             total[e] = total.get(e, 0) + 1
             hit[e] = hit.get(e, 0) + (sp["index"] in matched)

@@ -13,7 +13,7 @@ import torch
 from tinyrnnt import config as C
 from tinyrnnt.data import CorpusSplit
 from tinyrnnt.experiment import ExperimentConfig
-from tinyrnnt.lab.evaluate import evaluate, write_atomic
+from tinyrnnt.lab.evaluate import evaluate, exposure_recall, write_atomic
 
 
 def _log(msg: str) -> None:
@@ -82,15 +82,7 @@ def run_train_bench(args) -> dict:
     unseen = CorpusSplit(cfg.data.corpus, "test_unseen")
     records, unseen_summary = evaluate(model, unseen, max_symbols=mcfg.decode.max_symbols)
     torch.set_num_threads(2)
-    from tinyrnnt.score import align
-
-    hit = total = 0
-    for r in records:
-        matched = {i for op, i, _ in align(r["ref"].split(), r["hyp"].split()) if op == "C"}
-        for sp in r["spans"]:
-            if sp["class"] == "invented_name":
-                total += 1
-                hit += sp["index"] in matched
+    unseen_name_recall = exposure_recall(records, cls="invented_name").get("rare_recall:unseen", 0.0)
     curve = facts["curve"]
     at5 = [p["cer"] for p in curve if p["minutes"] <= 5.0 + 1e-6]
     reach = [p["minutes"] for p in curve if p["cer"] is not None and p["cer"] <= 0.10]
@@ -111,7 +103,7 @@ def run_train_bench(args) -> dict:
         "test_cer": summary["cer"],
         "test_wer": summary["wer"],
         "test_unseen_cer": unseen_summary["cer"],
-        "unseen_name_recall": round(hit / max(total, 1), 4),
+        "unseen_name_recall": round(unseen_name_recall, 4),
         "train_seconds": facts["train_seconds"],
         "curve": [(p["minutes"], p["cer"]) for p in curve],
     }

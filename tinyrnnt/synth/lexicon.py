@@ -184,7 +184,7 @@ def invented_names(n_names: int, rng: np.random.Generator, max_spellings: int = 
             raise LexiconError(f"could only build {total} invented names of {n_names} asked for")
         n_syl = 1 + int(rng.random() < 0.5)
         parts = [syl[i] for i in rng.integers(len(syl), size=n_syl)] + [end[rng.integers(len(end))]]
-        if any(_VOWEL_END(a) and _VOWEL_START(b) for (a, _), (b, _) in zip(parts, parts[1:])):
+        if any(_vowel_end(a) and _vowel_start(b) for (a, _), (b, _) in zip(parts, parts[1:])):
             continue  # vowel meeting vowel ("taah") reads unlike a name
         phones = tuple(" ".join(p for p, _ in parts).split())
         options = ["".join(c) for c in itertools.product(*(s for _, s in parts))]
@@ -204,11 +204,11 @@ def invented_names(n_names: int, rng: np.random.Generator, max_spellings: int = 
 _VOWELS = {"AA", "AE", "AH", "AO", "AW", "AY", "EH", "ER", "EY", "IH", "IY", "OW", "OY", "UH", "UW"}
 
 
-def _VOWEL_START(phones: str) -> bool:
+def _vowel_start(phones: str) -> bool:
     return phones.split()[0] in _VOWELS
 
 
-def _VOWEL_END(phones: str) -> bool:
+def _vowel_end(phones: str) -> bool:
     return phones.split()[-1] in _VOWELS
 
 
