@@ -27,9 +27,10 @@ def _batch():
 
 @pytest.mark.parametrize("kind", KINDS)
 @pytest.mark.parametrize("inject", ["joiner", "predictor", "both"])
-def test_zero_output_weights_give_the_baseline_logits(kind, inject):
+@pytest.mark.parametrize("token_boost", [False, True])
+def test_zero_output_weights_give_the_baseline_logits(kind, inject, token_boost):
     torch.manual_seed(0)
-    biased = Transducer(SMALL, BiasConfig(kind=kind, inject=inject)).eval()
+    biased = Transducer(SMALL, BiasConfig(kind=kind, inject=inject, token_boost=token_boost)).eval()
     plain = Transducer(SMALL).eval()
     plain.load_state_dict({k: v for k, v in biased.state_dict().items() if not k.startswith("bias.")})
     for name, p in biased.bias.named_parameters():
@@ -41,6 +42,23 @@ def test_zero_output_weights_give_the_baseline_logits(kind, inject):
     b, _ = plain(x, xl, targets, lens)
     assert torch.equal(a, b)
     assert greedy_decode(biased, x, xl, biaser=biased.bias.decoder(LISTS)) == greedy_decode(plain, x, xl)
+
+
+def test_token_boost_raises_exactly_the_cued_tokens():
+    """With the cue into the joiner off (to_joiner zero), the boost moves only the logits of tokens
+    the tree allows next, by the gate's value; blank and every other token keep the plain logits."""
+    torch.manual_seed(3)
+    model = Transducer(SMALL, BiasConfig(kind="trie", token_boost=True)).eval()
+    for p in model.bias.to_joiner.parameters():
+        torch.nn.init.zeros_(p)
+    torch.nn.init.constant_(model.bias.to_logits.bias, 2.0)  # gate = 2 everywhere (weight stays 0)
+    targets, lens = _batch()
+    x, xl = torch.randn(3, 60, 80), torch.tensor([60, 50, 40])
+    boosted, _ = model(x, xl, targets, lens, LISTS)
+    plain, _ = model(x, xl, targets, lens)  # no lists: the plain path
+    cue = model.bias.features(LISTS, targets, lens)["logits"]  # (B, U+1, V)
+    assert cue.sum() > 0
+    assert torch.allclose(boosted - plain, 2.0 * cue[:, None].expand_as(plain), atol=1e-5)
 
 
 @pytest.mark.parametrize("kind", KINDS)

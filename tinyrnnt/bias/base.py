@@ -15,7 +15,9 @@ One class per idea, registered by name, chosen by `bias.kind` in a recipe:
         def decoder(self, lists) -> DecodeState-like object with start/advance/feature
 
 `features` returns {"joiner": (B, U+1, Dj)} and/or {"predictor": (B, U+1, E)}
-for training; `decoder(lists)` returns an object that keeps a per-hypothesis
+for training, and optionally {"logits": (B, U+1, V)}: a per-token feature that
+`token_scores(hidden, feature)` turns into scores added straight to the joiner's
+token logits (hidden is the joiner's tanh layer, (..., Dj)); `decoder(lists)` returns an object that keeps a per-hypothesis
 state while decoding (see `Biaser`) so decoding sees the features training saw.
 """
 
@@ -46,6 +48,9 @@ class BiasConfig:
     inject: str = "joiner"  # joiner | predictor | both
     cue_dim: int = 64  # projection size of the cue before it meets the model
     cue_dropout: float = 0.1  # chance the whole cue of an utterance is zeroed in training
+    # A learned gate on the joiner's hidden layer adds the cue straight to the token logits
+    # (0 at init): makes "follow the tree" one scalar per grid point to learn, not a V x V map.
+    token_boost: bool = False
     word_start: str = "first_tokens"  # cue at word starts: first tokens of all listed words, or "none"
     valid_list_size: int = 100  # list size of the valid split's lists during training
     sampling: ListSampling = field(default_factory=ListSampling)
@@ -90,6 +95,10 @@ class BiasingInput(nn.Module):
     def decoder(self, lists: list[list[str]]) -> "Biaser":
         raise NotImplementedError
 
+    def token_scores(self, hidden: Tensor, feature: Tensor) -> Tensor:
+        """Scores (..., V) added to the joiner logits, for modules whose features hold "logits"."""
+        raise NotImplementedError
+
 
 class Biaser:
     """Decode-time state holder: one state per hypothesis row."""
@@ -102,5 +111,5 @@ class Biaser:
         raise NotImplementedError
 
     def features(self, state) -> dict[str, Tensor]:
-        """{"joiner": (B, Dj)} and/or {"predictor": (B, E)} for the current label history."""
+        """{"joiner": (B, Dj)}, {"predictor": (B, E)}, {"logits": (B, V)}: as in training, per row."""
         raise NotImplementedError

@@ -5,6 +5,12 @@ position, which tokens would continue the current partial word towards a
 listed word. It is projected (V -> cue_dim -> tanh) and then to the injection
 point: the joiner's predictor side (default), the predictor's input, or both.
 In training the whole cue of an utterance is dropped with `cue_dropout`.
+
+With `token_boost`, the cue also goes straight to the token logits, scaled by a
+gate computed from the joiner's hidden layer at each (t, u): logits[v] +=
+g(t, u) * cue[u, v]. The gate starts at 0 (the model starts as the plain path)
+and learns where to follow the tree; the projected cue it sees through the
+joiner tells it how narrow the tree is at that point.
 """
 
 from __future__ import annotations
@@ -26,6 +32,10 @@ class TrieCue(BiasingInput):
         self.proj = nn.Linear(VOCAB_SIZE, cfg.cue_dim)
         self.to_joiner = nn.Linear(cfg.cue_dim, joiner_dim) if cfg.inject in ("joiner", "both") else None
         self.to_predictor = nn.Linear(cfg.cue_dim, embed_dim) if cfg.inject in ("predictor", "both") else None
+        self.to_logits = nn.Linear(joiner_dim, 1) if cfg.token_boost else None
+        if self.to_logits is not None:
+            nn.init.zeros_(self.to_logits.weight)
+            nn.init.zeros_(self.to_logits.bias)
         self._trees: dict[tuple[str, ...], PrefixTree] = {}
         self._cached_nodes = 0
 
@@ -49,7 +59,12 @@ class TrieCue(BiasingInput):
             out["joiner"] = self.to_joiner(h)  # (..., Dj)
         if self.to_predictor is not None:
             out["predictor"] = self.to_predictor(h)  # (..., E)
+        if self.to_logits is not None:
+            out["logits"] = cue  # (..., V)
         return out
+
+    def token_scores(self, hidden: Tensor, cue: Tensor) -> Tensor:
+        return self.to_logits(hidden) * cue  # (..., 1) * (..., V)
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         trees = BatchedTrees([self.tree(words) for words in lists])

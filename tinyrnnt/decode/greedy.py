@@ -47,7 +47,10 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
         if not still.any():
             break
         for _ in range(max_symbols):
-            logits = model.joiner.out(torch.tanh(enc_p[:, t] + label))  # (B, V)
+            hidden = torch.tanh(enc_p[:, t] + label)  # (B, Dj)
+            logits = model.joiner.out(hidden)  # (B, V)
+            if "logits" in extra:
+                logits = logits + model.bias.token_scores(hidden, extra["logits"])
             best = logits.argmax(-1)  # (B,)
             emit = still & (best != BLANK)
             if not emit.any():

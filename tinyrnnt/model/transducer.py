@@ -141,10 +141,13 @@ class Joiner(nn.Module):
         p = self.pred_proj(pred)  # (B, U+1, Dj)
         return p if label_bias is None else p + label_bias
 
-    def forward(self, enc: Tensor, pred: Tensor, label_bias: Tensor | None = None) -> Tensor:
+    def hidden(self, enc: Tensor, pred: Tensor, label_bias: Tensor | None = None) -> Tensor:
         e = self.enc_proj(enc)  # (B, T, Dj)
         p = self.label_side(pred, label_bias)  # (B, U+1, Dj)
-        return self.out(torch.tanh(e[:, :, None, :] + p[:, None, :, :]))  # (B, T, U+1, V)
+        return torch.tanh(e[:, :, None, :] + p[:, None, :, :])  # (B, T, U+1, Dj)
+
+    def forward(self, enc: Tensor, pred: Tensor, label_bias: Tensor | None = None) -> Tensor:
+        return self.out(self.hidden(enc, pred, label_bias))  # (B, T, U+1, V)
 
 
 class Transducer(nn.Module):
@@ -183,7 +186,11 @@ class Transducer(nn.Module):
         joiner_bias = extra.get("joiner")
         if label_bias is not None:
             joiner_bias = label_bias if joiner_bias is None else joiner_bias + label_bias
-        return self.joiner(enc, pred, joiner_bias), enc_lens, first  # (B, T', U+1, V)
+        if "logits" not in extra:
+            return self.joiner(enc, pred, joiner_bias), enc_lens, first  # (B, T', U+1, V)
+        hidden = self.joiner.hidden(enc, pred, joiner_bias)  # (B, T', U+1, Dj)
+        logits = self.joiner.out(hidden) + self.bias.token_scores(hidden, extra["logits"][:, None])
+        return logits, enc_lens, first  # (B, T', U+1, V)
 
     def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
         """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""
