@@ -75,7 +75,7 @@ def bench_corpus(args) -> dict:
     from tinyrnnt.synth.sentences import TextConfig
 
     small = dict(train_utts=300, valid_utts=40, test_utts=40, test_unseen_utts=40, max_list_size=500,
-                 list_sizes=(0, 10, 100, 500), text=TextConfig(n_invented_names=800, few_shot_share=0.03))
+                 list_sizes=(0, 10, 100, 500), text=TextConfig(n_invented_names=800, n_compounds=200, few_shot_share=0.03))
     with tempfile.TemporaryDirectory() as tmp:
         for name, seed in (("a", 7), ("b", 7), ("c", 8)):
             build_corpus(CorpusConfig(seed=seed, **small), Path(tmp) / name, quiet=True)
