@@ -32,7 +32,7 @@ shared:
   train: {{minutes: 0.05, max_epochs: 2, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
 runs:
   baseline: {{}}
-  trie: {{bias: {{kind: trie, cue_dim: 8}}, train: {{init_from: "run:baseline"}}}}
+  trie: {{bias: {{kind: trie, cue_dim: 8, token_boost: true}}, train: {{init_from: "run:baseline"}}}}
 evaluate: {{splits: [test_unseen], list_sizes: [0, 10]}}
 """)
     rows = run_recipe(recipe, quiet=True)
@@ -45,6 +45,23 @@ evaluate: {{splits: [test_unseen], list_sizes: [0, 10]}}
     assert (ckpt.parent / "config.yaml").is_file()
     hyps = (tmp_path / "runs" / "smoke" / "trie" / "results" / "test_unseen.n10.hyps.jsonl").read_text().splitlines()
     assert len(hyps) == 16
+
+
+def test_training_again_in_a_used_run_folder_keeps_the_earlier_checkpoints_apart(corpus, tmp_path):
+    from tinyrnnt.experiment import load_experiment
+    from tinyrnnt.lab.train import train
+
+    cfg = load_experiment(None, [f"data.corpus={corpus}", f"run_dir={tmp_path / 'run'}", "data.batch_size=16",
+                                 "data.valid_subset=16", "model.encoder_dim=32", "model.predictor_dim=32",
+                                 "model.joiner_dim=24", "model.encoder_layers=2", "train.minutes=0.2",
+                                 "train.max_epochs=1", "train.validate_every_steps=4", "train.threads=1",
+                                 "train.snapshot_minutes=0"])
+    first = train(cfg, quiet=True)
+    second = train(cfg, quiet=True)
+    ckpts = tmp_path / "run" / "checkpoints"
+    assert second.best_checkpoint == ckpts / "best.ckpt" == first.best_checkpoint
+    assert sorted(p.name for p in ckpts.glob("*.ckpt")) == ["best.ckpt", "last.ckpt"]  # no "best-v1.ckpt"
+    assert (tmp_path / "run" / "checkpoints.previous" / "best.ckpt").is_file()
 
 
 def test_damaged_checkpoint_is_one_clear_sentence(tmp_path):

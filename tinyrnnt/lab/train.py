@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import shutil
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -40,6 +41,15 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     L.seed_everything(cfg.train.seed, verbose=False)
     run = Path(cfg.run_dir)
     ckpt_dir = run / "checkpoints"
+    if not resume and any(ckpt_dir.glob("*.ckpt")):
+        # A fresh run in a used run folder: keep the earlier checkpoints one generation back
+        # rather than let them sit beside the new ones under the same names.
+        previous = run / "checkpoints.previous"
+        if previous.exists():
+            shutil.rmtree(previous)
+        ckpt_dir.rename(previous)
+        if not quiet:
+            print(f"{run}: earlier checkpoints moved to {previous}")
     ckpt_dir.mkdir(parents=True, exist_ok=True)
     C.save(cfg, run / "config.yaml")
     C.save(cfg, ckpt_dir / "config.yaml")  # the final config beside every checkpoint
@@ -66,7 +76,8 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
         if unexpected:
             raise CheckpointError(f"{cfg.train.init_from}: holds weights this model lacks: {unexpected[:5]}")
     clock = TrainingClock(cfg.train.minutes, cfg.train.snapshot_minutes)
-    best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True)
+    best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True,
+                           enable_version_counter=False)
     callbacks = [clock, best]
     if cfg.train.early_stop_patience:
         callbacks.append(EarlyStopping(monitor="valid_cer", mode="min", patience=cfg.train.early_stop_patience))
