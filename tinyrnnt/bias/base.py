@@ -35,7 +35,7 @@ REGISTRY: dict[str, type["BiasingInput"]] = {}
 class ListSampling:
     """Training-time lists, in the spirit of CLAS (Pundak et al., 2018): true words kept or dropped, plus distractors."""
 
-    keep_true: float = 0.85  # chance each reference rare word is put in the list
+    keep_true: float = 0.95  # chance each reference rare word is put in the list
     empty_list: float = 0.1  # chance an utterance gets no list at all (teaches trust in the sound)
     size: tuple[int, int] = (5, 100)  # list size drawn uniformly in this range (before true words)
     confusable: float = 0.1  # chance a kept word brings its other spellings along as distractors
@@ -47,7 +47,7 @@ class BiasConfig:
     module: str = ""  # a Python module to import first, which registers your own biasing input
     inject: str = "joiner"  # joiner | predictor | both
     cue_dim: int = 64  # projection size of the cue before it meets the model
-    cue_dropout: float = 0.1  # chance the whole cue of an utterance is zeroed in training
+    cue_dropout: float = 0.05  # chance the whole cue of an utterance is zeroed in training
     # A learned gate on the joiner's hidden layer adds the cue straight to the token logits
     # (0 at init): makes "follow the tree" one scalar per grid point to learn, not a V x V map.
     token_boost: bool = False
