@@ -48,9 +48,7 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
             break
         for _ in range(max_symbols):
             hidden = torch.tanh(enc_p[:, t] + label)  # (B, Dj)
-            logits = model.joiner.out(hidden)  # (B, V)
-            if "logits" in extra:
-                logits = logits + model.bias.token_scores(hidden, extra["logits"])
+            logits = model.token_logits(hidden, extra.get("logits"))  # (B, V)
             best = logits.argmax(-1)  # (B,)
             emit = still & (best != BLANK)
             if not emit.any():

@@ -186,11 +186,15 @@ class Transducer(nn.Module):
         joiner_bias = extra.get("joiner")
         if label_bias is not None:
             joiner_bias = label_bias if joiner_bias is None else joiner_bias + label_bias
-        if "logits" not in extra:
-            return self.joiner(enc, pred, joiner_bias), enc_lens, first  # (B, T', U+1, V)
         hidden = self.joiner.hidden(enc, pred, joiner_bias)  # (B, T', U+1, Dj)
-        logits = self.joiner.out(hidden) + self.bias.token_scores(hidden, extra["logits"][:, None])
-        return logits, enc_lens, first  # (B, T', U+1, V)
+        token_feature = extra["logits"][:, None] if "logits" in extra else None  # (B, 1, U+1, V)
+        return self.token_logits(hidden, token_feature), enc_lens, first  # (B, T', U+1, V)
+
+    def token_logits(self, hidden: Tensor, token_feature: Tensor | None = None) -> Tensor:
+        """Joiner hidden layer (..., Dj) -> logits (..., V), plus the biasing input's token scores
+        when it gives a "logits" feature; training and decoding both come through here."""
+        logits = self.joiner.out(hidden)
+        return logits if token_feature is None else logits + self.bias.token_scores(hidden, token_feature)
 
     def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
         """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""
