@@ -74,3 +74,19 @@ def test_causal_encoder_ignores_the_future():
     a, _ = m.encoder(x, torch.tensor([64]))
     b, _ = m.encoder(y, torch.tensor([64]))
     assert torch.equal(a[:, :6], b[:, :6]) and not torch.equal(a[:, 6:], b[:, 6:])
+
+
+def test_padding_does_not_change_an_utterances_encoder_output():
+    """A bidirectional encoder packs its input: the same utterance alone and inside a padded batch
+    gives the same encoder frames (the backward direction must not start in the padding)."""
+    torch.manual_seed(5)
+    m = Transducer(SMALL).eval()
+    x, xl = torch.randn(3, 57, 80), torch.tensor([57, 33, 9])
+    for b in range(3):
+        x[b, xl[b]:] = 0.0  # padding as the data loader writes it
+    batched, lens = m.encoder(x, xl)
+    for b in range(3):
+        single, n = m.encoder(x[b: b + 1, : xl[b]], xl[b: b + 1])
+        assert int(n) == int(lens[b])
+        assert torch.allclose(single[0], batched[b, : int(n)], atol=1e-5)
+        assert torch.all(batched[b, int(n):] == 0)  # padded encoder frames carry nothing

@@ -2,6 +2,8 @@
 
 import json
 
+import torch
+
 import pytest
 
 from tinyrnnt.lab.recipes import run_recipe
@@ -71,3 +73,31 @@ def test_damaged_checkpoint_is_one_clear_sentence(tmp_path):
         load_model(bad)
     with pytest.raises(CheckpointError, match="not found"):
         load_model(tmp_path / "missing.ckpt")
+
+
+SMALL_RUN = ["data.batch_size=16", "data.valid_subset=16", "model.encoder_dim=32", "model.predictor_dim=32",
+             "model.joiner_dim=24", "model.encoder_layers=2", "train.validate_every_steps=4", "train.threads=1",
+             "train.snapshot_minutes=0", "train.minutes=0"]
+
+
+def test_same_seed_and_steps_give_the_same_weights_and_a_history_through_init_from(corpus, tmp_path):
+    from tinyrnnt.experiment import load_experiment
+    from tinyrnnt.lab.train import read_history, train
+
+    def run(name, *extra):
+        cfg = load_experiment(None, [f"data.corpus={corpus}", f"run_dir={tmp_path / name}", *SMALL_RUN, *extra])
+        return train(cfg, quiet=True)
+
+    a, b = run("a", "train.steps=6"), run("b", "train.steps=6")
+    wa = load_model(a.last_checkpoint)[0]
+    wb = load_model(b.last_checkpoint)[0]
+    assert a.steps == b.steps == 6
+    assert all(torch.equal(x, y) for x, y in zip(wa.state_dict().values(), wb.state_dict().values()))
+    c = run("c", "train.steps=6", "train.seed=1")
+    wc = load_model(c.last_checkpoint)[0]
+    assert not all(torch.equal(x, y) for x, y in zip(wa.state_dict().values(), wc.state_dict().values()))
+    # a fine-tuned run counts the steps and seconds of the run it starts from
+    d = run("d", "train.steps=4", f"train.init_from={a.last_checkpoint}", "bias.kind=trie", "bias.cue_dim=8")
+    h = read_history(d.last_checkpoint)
+    assert h["steps"] == 10 and [r["steps"] for r in h["runs"]] == [6, 4]
+    assert h["seconds"] == pytest.approx(a.history["seconds"] + d.train_seconds, abs=0.05)

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from tinyrnnt import config as C
 from tinyrnnt.bias.base import BiasConfig
 from tinyrnnt.data import DataConfig
-from tinyrnnt.model.lightning import TrainConfig
+from tinyrnnt.model.training import TrainConfig
 from tinyrnnt.model.transducer import ModelConfig
 from tinyrnnt.synth.corpus import CorpusConfig
 

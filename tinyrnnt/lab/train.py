@@ -25,7 +25,8 @@ class TrainResult:
     best_checkpoint: Path
     last_checkpoint: Path
     train_seconds: float
-    steps: int
+    steps: int  # this run's optimiser steps
+    history: dict  # total steps and seconds behind the last checkpoint, summed through init_from
     snapshots: list  # (training seconds, state_dict) pairs
     clock: object = None  # the TrainingClock: utterances, frames, flops counted
 
@@ -37,6 +38,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
 
     from tinyrnnt.model.lightning import TrainingClock, TransducerTask
 
+    check_budget(cfg)
     torch.set_num_threads(cfg.train.threads)
     L.seed_everything(cfg.train.seed, verbose=False)
     run = Path(cfg.run_dir)
@@ -75,13 +77,15 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
         missing, unexpected = task.load_state_dict(weights, strict=False)
         if unexpected:
             raise CheckpointError(f"{cfg.train.init_from}: holds weights this model lacks: {unexpected[:5]}")
+        task.prior = read_history(cfg.train.init_from)
     clock = TrainingClock(cfg.train.minutes, cfg.train.snapshot_minutes)
     best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True,
                            enable_version_counter=False)
     callbacks = [clock, best]
     if cfg.train.early_stop_patience:
         callbacks.append(EarlyStopping(monitor="valid_cer", mode="min", patience=cfg.train.early_stop_patience))
-    trainer_args = dict(max_epochs=cfg.train.max_epochs, val_check_interval=cfg.train.validate_every_steps,
+    trainer_args = dict(max_epochs=cfg.train.max_epochs, max_steps=cfg.train.steps or -1,
+                        deterministic=cfg.train.deterministic, val_check_interval=cfg.train.validate_every_steps,
                         check_val_every_n_epoch=None, gradient_clip_val=cfg.train.grad_clip,
                         logger=CSVLogger(run, name="logs"), callbacks=callbacks, enable_progress_bar=not quiet,
                         enable_model_summary=not quiet, num_sanity_val_steps=0, accelerator="cpu",
@@ -94,8 +98,32 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
         warnings.filterwarnings("ignore", message=".*exists and is not empty.*")  # our config.yaml sits there
         warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
         trainer.fit(task, train_dl, valid_dl, ckpt_path="last" if resume and (ckpt_dir / "last.ckpt").exists() else None)
+    # subtle: Lightning writes last.ckpt at validations; the budget usually ends between two, so the
+    # final weights (the ones equal-step comparisons evaluate) are saved here.
+    trainer.save_checkpoint(ckpt_dir / "last.ckpt")
     return TrainResult(run, Path(best.best_model_path or ckpt_dir / "last.ckpt"), ckpt_dir / "last.ckpt",
-                       task.train_seconds, trainer.global_step, clock.snapshots, clock)
+                       task.train_seconds, trainer.global_step, task.history(trainer.global_step),
+                       clock.snapshots, clock)
+
+
+def check_budget(cfg: ExperimentConfig) -> None:
+    t = cfg.train
+    if t.steps < 0 or t.minutes < 0:
+        raise C.ConfigError(f"train.steps ({t.steps}) and train.minutes ({t.minutes}) cannot be negative")
+    if t.steps == 0 and t.minutes == 0:
+        raise C.ConfigError("set a training budget: train.steps (optimiser steps) or train.minutes (a time cap)")
+
+
+def read_history(path: str | Path) -> dict:
+    """{"steps", "seconds", "runs"}: the training behind a checkpoint's weights, through init_from.
+
+    Checkpoints written before histories were kept count their own steps and seconds only.
+    """
+    ckpt = torch.load(Path(path), map_location="cpu", weights_only=True)
+    if "history" in ckpt:
+        return ckpt["history"]
+    own = {"run": str(path), "steps": int(ckpt["global_step"]), "seconds": float(ckpt["train_seconds"])}
+    return {"steps": own["steps"], "seconds": own["seconds"], "runs": [own]}
 
 
 def read_checkpoint(path: str | Path) -> tuple[dict, dict]:

@@ -10,59 +10,15 @@ recipe unchanged, so the same recipe runs on GPUs or several machines.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
 
 import lightning as L
 import torch
 
 from tinyrnnt.decode.greedy import greedy_decode
+from tinyrnnt.model.training import TrainConfig, lr_factor, spec_mask  # noqa: F401  (TrainConfig re-exported)
 from tinyrnnt.model.transducer import Transducer, training_flops
 from tinyrnnt.score import cer
 from tinyrnnt.text import decode
-
-
-@dataclass
-class TrainConfig:
-    learning_rate: float = 3e-3
-    warmup_steps: int = 200
-    decay_half_life_steps: int = 2000  # after warm-up the rate halves every this many steps
-    min_learning_rate: float = 1e-4
-    grad_clip: float = 5.0
-    time_masks: int = 0  # time masks per utterance (0 = off); masked frames set to 0 (the mean)
-    time_mask_frames: int = 15
-    freq_masks: int = 0
-    freq_mask_bins: int = 8
-    minutes: float = 10.0  # training-time budget (validation time not counted)
-    max_epochs: int = 1000
-    threads: int = 2  # torch CPU threads
-    seed: int = 0
-    loss_implementation: str = "ours"  # or "torchaudio" (same values; see tinyrnnt.model.loss)
-    validate_every_steps: int = 300
-    early_stop_patience: int = 0  # validations without CER improvement before stopping (0 = off)
-    snapshot_minutes: float = 1.0  # keep a copy of the weights every this many training minutes (0 = off)
-    bias_lr_scale: float = 1.0  # learning-rate factor for the biasing input's own parameters
-    init_from: str = ""  # checkpoint to start from (weights only; new parts keep their init);
-    # in a recipe, "run:NAME" means the best checkpoint of the earlier run NAME
-    trainer: dict = field(default_factory=dict)  # passed to lightning.Trainer unchanged
-
-
-def spec_mask(feats, feat_lens, cfg: TrainConfig, generator=None):
-    """Time and frequency masking (SpecAugment-style, Park et al. 2019), in place on a copy."""
-    if cfg.time_masks == 0 and cfg.freq_masks == 0:
-        return feats
-    feats = feats.clone()
-    B, T, F = feats.shape
-    for _ in range(cfg.time_masks):
-        width = torch.randint(0, cfg.time_mask_frames + 1, (B, 1), generator=generator)
-        start = (torch.rand(B, 1, generator=generator) * (feat_lens[:, None] - width).clamp(min=1)).long()
-        t = torch.arange(T)[None, :]
-        feats[(t >= start) & (t < start + width)] = 0.0
-    for _ in range(cfg.freq_masks):
-        width = torch.randint(0, cfg.freq_mask_bins + 1, (B, 1), generator=generator)
-        start = (torch.rand(B, 1, generator=generator) * (F - width)).long()
-        f = torch.arange(F)[None, :]
-        feats.transpose(1, 2)[(f >= start) & (f < start + width)] = 0.0
-    return feats
 
 
 class TransducerTask(L.LightningModule):
@@ -75,6 +31,9 @@ class TransducerTask(L.LightningModule):
         self.cfg = experiment_from_dict(config)
         self.model = Transducer(self.cfg.model, self.cfg.bias if self.cfg.bias.kind != "none" else None)
         self.train_seconds = 0.0
+        # Training this model descends from (set from the init_from checkpoint's history):
+        # optimiser steps and training seconds before this run, and the runs they came from.
+        self.prior = {"steps": 0, "seconds": 0.0, "runs": []}
         self._t0 = None
 
     def _common_step(self, batch, stage: str):
@@ -114,30 +73,35 @@ class TransducerTask(L.LightningModule):
         groups = [{"params": rest}] + ([{"params": bias, "lr": t.learning_rate * t.bias_lr_scale}] if bias else [])
         opt = torch.optim.Adam(groups, lr=t.learning_rate)
 
-        def factor(step: int) -> float:
-            if step < t.warmup_steps:
-                return (step + 1) / t.warmup_steps
-            decayed = 0.5 ** ((step - t.warmup_steps) / t.decay_half_life_steps)
-            return max(decayed, t.min_learning_rate / t.learning_rate)
-
-        sched = torch.optim.lr_scheduler.LambdaLR(opt, factor)
+        sched = torch.optim.lr_scheduler.LambdaLR(opt, lambda step: lr_factor(step, t))
         return {"optimizer": opt, "lr_scheduler": {"scheduler": sched, "interval": "step"}}
+
+    def history(self, steps: int) -> dict:
+        """Total training behind the weights after `steps` steps of this run, summed through init_from."""
+        own = {"run": self.cfg.run_dir, "steps": int(steps), "seconds": round(self.train_seconds, 2)}
+        return {"steps": self.prior["steps"] + own["steps"],
+                "seconds": round(self.prior["seconds"] + self.train_seconds, 2),
+                "runs": self.prior["runs"] + [own]}
 
     def on_save_checkpoint(self, checkpoint):
         checkpoint["train_seconds"] = self.train_seconds
+        checkpoint["prior"] = self.prior
+        checkpoint["history"] = self.history(self.trainer.global_step)
 
     def on_load_checkpoint(self, checkpoint):
-        self.train_seconds = float(checkpoint.get("train_seconds", 0.0))
+        self.train_seconds = float(checkpoint["train_seconds"])
+        self.prior = checkpoint["prior"]
 
 
 class TrainingClock(L.Callback):
-    """Stops when the training-time budget is spent; snapshots weights every few training minutes.
+    """Stops when the training-time cap is spent (0 = no cap); snapshots weights every few training
+    minutes. The step budget is the Trainer's own `max_steps`.
 
     Validation time is not counted, so "minutes of training" means optimiser work.
     """
 
     def __init__(self, minutes: float, snapshot_minutes: float):
-        self.budget = minutes * 60.0
+        self.budget = minutes * 60.0 if minutes > 0 else float("inf")
         self.every = snapshot_minutes * 60.0
         self.snapshots: list[tuple[float, dict]] = []
         self.utterances = self.frames = self.flops = 0
@@ -152,15 +116,3 @@ class TrainingClock(L.Callback):
             self.snapshots.append((s, {k: v.detach().clone() for k, v in task.model.state_dict().items()}))
         if s >= self.budget:
             trainer.should_stop = True
-
-
-def lr_at(step: int, t: TrainConfig) -> float:
-    """The schedule's learning rate at a step (for plots and tests).
-
-    >>> lr_at(0, TrainConfig(warmup_steps=10)) == 3e-3 / 10
-    True
-    """
-    if step < t.warmup_steps:
-        return t.learning_rate * (step + 1) / t.warmup_steps
-    return max(t.learning_rate * 0.5 ** ((step - t.warmup_steps) / t.decay_half_life_steps), t.min_learning_rate)
-

@@ -79,13 +79,29 @@ class Encoder(nn.Module):
         B, T, F = feats.shape
         x, lengths = stack_frames(feats, lengths, self.cfg.stack_frames)  # (B, T/4, 4F)
         x = torch.relu(self.input(x))  # (B, T/4, De)
-        first, _ = self.first(x)  # (B, T/4, De*dirs)
+        first = _packed(self.first, x, lengths)  # (B, T/4, De*dirs)
         first_lens = lengths
         x, lengths = stack_frames(self.dropout(first), lengths, self.cfg.stack_after_first)  # (B, T/8, 2*De*dirs)
-        x, _ = self.rest(x)  # (B, T/8, De*dirs)
+        x = _packed(self.rest, x, lengths)  # (B, T/8, De*dirs)
         if keep_first:
             return self.dropout(x), lengths, first, first_lens
         return self.dropout(x), lengths
+
+
+def _packed(lstm: nn.LSTM, x: Tensor, lengths: Tensor) -> Tensor:
+    """Run an LSTM over the valid frames only; padded frames come out as zeros.
+
+    subtle: without packing, the backward direction of a bidirectional layer starts
+    in the padding, so an utterance's output would depend on the longest one in its
+    batch. Packed, a batch of one and the same utterance in a padded batch agree.
+    """
+    B, T, _ = x.shape
+    if bool((lengths == T).all()):
+        return lstm(x)[0]  # nothing padded: skip the packing cost
+    packed = nn.utils.rnn.pack_padded_sequence(x, lengths.clamp(min=1).cpu(), batch_first=True,
+                                               enforce_sorted=False)
+    out, _ = lstm(packed)
+    return nn.utils.rnn.pad_packed_sequence(out, batch_first=True, total_length=T)[0]  # (B, T, D)
 
 
 class Predictor(nn.Module):
