@@ -14,9 +14,10 @@ from tinyrnnt.synth.corpus import CorpusConfig, CorpusExistsError, build_corpus,
 from tinyrnnt.synth.scenario import ScenarioError, load_scenario
 from tinyrnnt.synth.sentences import TextConfig
 
-TINY = dict(train_utts=120, valid_utts=16, test_utts=16, test_unseen_utts=16, max_list_size=300,
+TINY = dict(test_soundalike_utts=20, train_utts=120, valid_utts=16, test_utts=16, test_unseen_utts=16, max_list_size=300,
             list_sizes=(0, 10, 100), train_speakers=6, heldout_speakers=2, workers=1,
-            text=TextConfig(n_invented_names=600, n_compounds=200, few_shot_share=0.01))
+            text=TextConfig(n_invented_names=600, n_compounds=200, few_shot_share=0.01,
+                            extra_styles={"fell": 60, "reed": 40}))
 
 
 def digest(folder: Path) -> str:
@@ -68,13 +69,54 @@ def test_every_invented_name_shares_its_sound_and_classes_are_present():
     assert homophone_share(inventory) == 1.0
     classes = {sp["class"] for s in splits["train"] for sp in s.spans}
     assert classes == {"invented_name", "rare_word", "compound"}
-    # Proportions follow the config: frequent groups per class, shares of the rest.
+    # Proportions follow the config, per name style: frequent groups of the plain style, shares of
+    # the rest; the seen extra style has no familiar names; the held-out style only unseen test names.
     groups = defaultdict(set)
     for rw in inventory:
-        groups[(rw.cls, rw.exposure)].add(rw.group)
-    n_names = len({rw.group for rw in inventory if rw.cls == "invented_name"})
-    assert len(groups[("invented_name", "frequent")]) == TINY["text"].frequent_groups
-    assert abs(len(groups[("invented_name", "unseen_test")]) - 0.2 * n_names) <= 1
+        groups[(rw.style, rw.exposure)].add(rw.group)
+    n_plain = len({rw.group for rw in inventory if rw.style == "plain"})
+    assert len(groups[("plain", "frequent")]) == TINY["text"].frequent_groups
+    assert abs(len(groups[("plain", "unseen_test")]) - 0.2 * n_plain) <= 1
+    assert not groups[("fell", "frequent")] and groups[("fell", "unseen_test")]
+    assert {e for (sty, e) in groups if sty == "reed"} == {"unseen_test"}
+    reed = {rw.word for rw in inventory if rw.style == "reed"}
+    assert reed & {sp["word"] for s in splits["test_unseen"] for sp in s.spans}
+    assert not reed & {w for split in ("train", "valid", "test") for s in splits[split] for w in s.words}
+
+
+def test_no_word_training_must_not_hear_occurs_in_training_text_over_several_seeds():
+    """The build-time check holds for several corpus seeds (and the build would refuse otherwise)."""
+    for seed in (0, 3, 11):
+        _, inventory, splits = make_text(CorpusConfig(seed=seed, **TINY))
+        never = {rw.word for rw in inventory if rw.exposure in ("unseen_valid", "unseen_test", "distractor", "soundalike")}
+        assert never and not never & {w for s in splits["train"] for w in s.words}
+
+
+def test_a_rare_word_that_templates_say_literally_is_left_out_with_a_warning(tmp_path):
+    import warnings
+
+    from tinyrnnt.resources import SCENARIO_DIR
+    from tinyrnnt.synth.scenario import load_scenario
+
+    text = (SCENARIO_DIR / "ferry_network.yaml").read_text()
+    text = text.replace("rare_words: [bollard,", "rare_words: [crates, bollard,")
+    (tmp_path / "s.yaml").write_text(text)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        scn = load_scenario(tmp_path / "s.yaml")
+    assert "crates" not in scn.rare_words and "bollard" in scn.rare_words
+    assert any("crates" in str(w.message) for w in caught)
+
+
+def test_soundalike_split_has_no_rare_word_and_lists_led_by_soundalike_entries():
+    _, inventory, splits = make_text(CorpusConfig(seed=1, **TINY))
+    by_word = {rw.word: rw for rw in inventory}
+    for s in splits["test_soundalike"]:
+        assert not s.spans and s.soundalikes
+        for entry in s.soundalikes:
+            rw = by_word[entry]
+            # the entry's sound is a stretch of the utterance's sound (a word, or two neighbours)
+            assert " ".join(rw.phones) in " ".join(s.phones)
 
 
 def test_word_boundaries_carry_no_cue():

@@ -11,9 +11,10 @@ from tinyrnnt.lab.train import CheckpointError, load_model
 from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
 from tinyrnnt.synth.sentences import TextConfig
 
-TINY = dict(train_utts=160, valid_utts=16, test_utts=16, test_unseen_utts=16, max_list_size=200,
+TINY = dict(train_utts=160, valid_utts=16, test_utts=16, test_unseen_utts=16, test_soundalike_utts=8, max_list_size=200,
             list_sizes=(0, 10), train_speakers=4, heldout_speakers=2, workers=1,
-            text=TextConfig(n_invented_names=500, n_compounds=150, few_shot_share=0.004))
+            text=TextConfig(n_invented_names=500, n_compounds=150, few_shot_share=0.004,
+                            extra_styles={"fell": 40, "reed": 30}))
 
 
 @pytest.fixture(scope="module")
@@ -31,22 +32,60 @@ out_dir: {tmp_path / 'runs'}
 shared:
   data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
   model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
-  train: {{minutes: 0.05, max_epochs: 2, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
+  train: {{steps: 6, minutes: 0, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
 runs:
   baseline: {{}}
-  trie: {{bias: {{kind: trie, cue_dim: 8, token_boost: true}}, train: {{init_from: "run:baseline"}}}}
-evaluate: {{splits: [test_unseen], list_sizes: [0, 10]}}
+  trie: {{bias: {{kind: trie, cue_dim: 8, token_boost: true}}, train: {{init_from: "run:baseline", steps: 4}}}}
+evaluate: {{splits: [test_unseen, test_soundalike], list_sizes: [0, 10]}}
 """)
     rows = run_recipe(recipe, quiet=True)
-    assert {(r["run"], r["list_size"]) for r in rows} == {("baseline", 0), ("baseline", 10), ("trie", 0), ("trie", 10)}
-    table = json.loads((tmp_path / "runs" / "smoke" / "results.json").read_text())
+    runs = {"baseline", "trie", "trie_control"}
+    assert {(r["run"], r["split"], r["list_size"]) for r in rows} == {
+        (run, split, n) for run in runs for split in ("test_unseen", "test_soundalike") for n in (0, 10)}
+    # equal training: the trie arm and its control both stand on the baseline's 6 steps plus 4 of their own
+    steps = {r["run"]: r["steps"] for r in rows}
+    assert steps == {"baseline": 6, "trie": 10, "trie_control": 10}
+    folder = tmp_path / "runs" / "smoke"
+    table = json.loads((folder / "results.json").read_text())
     assert table == json.loads(json.dumps(rows))
-    ckpt = tmp_path / "runs" / "smoke" / "trie" / "checkpoints" / "last.ckpt"
+    comparisons = json.loads((folder / "comparisons.json").read_text())
+    assert {(c["system"], c["against"], c["role"]) for c in comparisons} == {
+        ("trie", "trie_control", "control"), ("trie", "baseline", "start")}
+    assert all(c["steps"] == c["against_steps"] for c in comparisons if c["role"] == "control")
+    assert "interval" in (folder / "results.md").read_text()
+    ckpt = folder / "trie" / "checkpoints" / "last.ckpt"
     model, cfg, _ = load_model(ckpt)
     assert cfg.bias.kind == "trie" and model.bias is not None
+    assert load_model(folder / "trie_control" / "checkpoints" / "last.ckpt")[1].bias.kind == "none"
     assert (ckpt.parent / "config.yaml").is_file()
-    hyps = (tmp_path / "runs" / "smoke" / "trie" / "results" / "test_unseen.n10.hyps.jsonl").read_text().splitlines()
+    hyps = (folder / "trie" / "results" / "test_unseen.n10.hyps.jsonl").read_text().splitlines()
     assert len(hyps) == 16
+
+
+def test_a_control_arm_needs_a_step_budget(tmp_path):
+    from tinyrnnt.config import ConfigError
+    from tinyrnnt.lab.recipes import expand_arms, read_recipe
+
+    recipe = tmp_path / "r.yaml"
+    recipe.write_text("runs: {baseline: {}, trie: {bias: {kind: trie}, train: {init_from: 'run:baseline'}}}\n")
+    with pytest.raises(ConfigError, match="control arm needs a step budget"):
+        expand_arms(read_recipe(recipe))
+
+
+def test_from_scratch_pairing_and_seeds_expand_to_equal_budgets(tmp_path):
+    from tinyrnnt.lab.recipes import expand_arms, read_recipe
+
+    recipe = tmp_path / "r.yaml"
+    recipe.write_text("pairing: from_scratch\nseeds: [0, 1]\n"
+                      "shared: {train: {steps: 50}}\n"
+                      "runs: {baseline: {}, trie: {bias: {kind: trie}, train: {init_from: 'run:baseline', steps: 30}}}\n")
+    arms = expand_arms(read_recipe(recipe))
+    assert list(arms) == ["baseline/seed0", "trie/seed0", "trie_control/seed0",
+                          "baseline/seed1", "trie/seed1", "trie_control/seed1"]
+    trie, ctl = arms["trie/seed1"], arms["trie_control/seed1"]
+    assert trie.cfg.train.init_from == ctl.cfg.train.init_from == "" and trie.source is None
+    assert trie.cfg.train.steps == ctl.cfg.train.steps == 80 and trie.cfg.train.seed == 1
+    assert trie.control == "trie_control/seed1" and ctl.cfg.bias.kind == "none"
 
 
 def test_training_again_in_a_used_run_folder_keeps_the_earlier_checkpoints_apart(corpus, tmp_path):

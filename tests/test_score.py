@@ -208,13 +208,17 @@ def test_false_trigger_rate_worked_example():
 
 
 def test_per_class_counts():
-    # orla (invented_name) substituted, kell (rare_word) correct, brannock inserted (no class).
+    # orla (invented_name) substituted, kell (rare_word) correct, brannock (compound) inserted:
+    # the biased insertion counts to the class of the inserted word, so class errors add up to
+    # the biased errors (worked example, ours).
     classes = {"orla": "invented_name", "kell": "rare_word", "brannock": "compound"}
     c = score_utterance("call orla at kell pier", "call orlah at kell brannock pier", LIST, classes)
     assert c["class:invented_name:errors"] == 1 and c["class:invented_name:words"] == 1
     assert c["class:rare_word:correct"] == 1 and c["class:rare_word:errors"] == 0
-    assert not any(k.startswith("class:compound") for k in c)
+    assert c["class:compound:errors"] == 1 and c["class:compound:words"] == 0
+    assert sum(v for k, v in c.items() if k.startswith("class:") and k.endswith(":errors")) == c["biased_errors"] == 2
     s = summarize([c])
+    assert s["bwer:compound"] is None  # no compound in the reference: no rate, the error is still counted
     assert s["bwer:invented_name"] == 1.0 and s["recall:invented_name"] == 0.0
     assert s["bwer:rare_word"] == 0.0 and s["recall:rare_word"] == 1.0
     assert s["n_biased_words:rare_word"] == 1
@@ -338,3 +342,28 @@ def test_brute_force_enumerates_every_alignment():
     # The number of alignments of lengths n, m is the Delannoy number (from memory:
     # D(1, 1) = 3, D(2, 2) = 13, D(3, 3) = 63), so the brute force above misses none.
     assert [sum(1 for _ in _all_alignments(k, k)) for k in (1, 2, 3)] == [3, 13, 63]
+
+
+def test_several_labels_per_entry_and_uwer_parts_add_up():
+    # A name carries its class and its name style; U-WER parts (substitutions and deletions,
+    # insertions next to a biased error, other insertions) add up to U-WER. Worked example, ours:
+    # ref  "call kalvin at the pier now"   (kalvin biased; 5 unbiased words)
+    # hyp  "call kal vin at a pier now so" -> kalvin->kal (S, biased), vin (I next to it),
+    #      the->a (S, unbiased), so (I, unbiased, not next to a biased error)
+    labels = {"kalvin": ("invented_name", "style:reed")}
+    c = score_utterance("call kalvin at the pier now", "call kal vin at a pier now so", ["kalvin"], labels)
+    assert c["class:style:reed:errors"] == c["class:invented_name:errors"] == 1
+    assert (c["unbiased_subdel"], c["unbiased_insertions_near_biased"], c["unbiased_insertions"]) == (1, 1, 2)
+    s = summarize([c])
+    assert s["uwer"] == pytest.approx(3 / 5)
+    assert s["uwer_subdel"] + s["uwer_ins_near_biased"] + s["uwer_ins_other"] == pytest.approx(s["uwer"])
+    assert s["bwer:style:reed"] == 1.0
+
+
+def test_compare_systems_pairs_by_id_and_refuses_mismatched_sets():
+    a = {"u1": score_utterance("a b", "a c"), "u2": score_utterance("c d", "c d")}
+    b = {"u2": score_utterance("c d", "c x"), "u1": score_utterance("a b", "a b")}  # other order
+    r = compare_systems(a, b, n_resamples=200)
+    assert r["rate_a"] == r["rate_b"] == 0.25  # the same utterances, matched by id not position
+    with pytest.raises(ValueError, match="different utterances"):
+        compare_systems(a, {"u1": a["u1"], "u3": a["u2"]})

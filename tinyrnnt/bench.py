@@ -2,7 +2,8 @@
 
     corpus   synthesis speed, default corpus build time and size, homophone share, determinism
     train    training throughput and FLOP utilisation, loss timing, greedy RTF, memory, CER curve
-    trie     trie-based deep biasing vs the baseline: B-WER, U-WER, false triggers, cue cost, recipe time
+    trie     trie-based deep biasing vs its equal-steps control arm and the baseline: B-WER, U-WER,
+             held-out name style, sound-alike false triggers, determinism, cue cost, recipe time
 
 Each builds what it needs (corpus, checkpoints) when missing. Rates are
 fractions, times in seconds unless the key says ms.
@@ -75,7 +76,8 @@ def bench_corpus(args) -> dict:
     from tinyrnnt.synth.sentences import TextConfig
 
     small = dict(train_utts=300, valid_utts=40, test_utts=40, test_unseen_utts=40, max_list_size=500,
-                 list_sizes=(0, 10, 100, 500), text=TextConfig(n_invented_names=800, n_compounds=200, few_shot_share=0.03))
+                 list_sizes=(0, 10, 100, 500), text=TextConfig(n_invented_names=800, n_compounds=200, few_shot_share=0.03,
+                                                      extra_styles={"fell": 100, "reed": 60}))
     with tempfile.TemporaryDirectory() as tmp:
         for name, seed in (("a", 7), ("b", 7), ("c", 8)):
             build_corpus(CorpusConfig(seed=seed, **small), Path(tmp) / name, quiet=True)
@@ -123,8 +125,10 @@ def main(argv=None) -> int:
     p.add_argument("--corpus", default="corpora/default", help="default corpus folder (built when missing)")
     p.add_argument("--rebuild", action="store_true", help="corpus: rebuild the default corpus to time it")
     p.add_argument("--minutes", type=float, default=None,
-                   help="train: training minutes (default 10); trie: minutes for every run "
-                        "(default: the recipe's, 7 for the baseline + 5 for the trie fine-tuning)")
+                   help="train: training minutes (default 10); trie: a time cap on every run for a quick look "
+                        "(default none: the recipe's step budgets)")
+    p.add_argument("--seeds", type=int, default=1,
+                   help="trie: training seeds per arm (default 1; 3 reports the spread of the gain)")
     p.add_argument("--fresh", action="store_true", help="train/trie: retrain even if a benchmark run exists")
     p.add_argument("--run-dir", default=None, help="train/trie: where the benchmark models live "
                    "(default runs/bench-train, runs/bench-trie)")

@@ -73,6 +73,7 @@ class CorpusSplit(torch.utils.data.Dataset):
         self.inv_std = 1.0 / np.asarray(feat["std"], dtype=np.float32)
         self._lists: dict[str, np.ndarray] = {}
         self._inventory: list[dict] | None = None
+        self._labels: dict[str, tuple[str, ...]] | None = None
 
     def __len__(self) -> int:
         return len(self.items)
@@ -91,13 +92,21 @@ class CorpusSplit(torch.utils.data.Dataset):
                 "spans": it["spans"], "index": i}
 
     def inventory(self) -> list[dict]:
-        """Rows of inventory.tsv: index, word, class, slot, exposure, group, phones."""
+        """Rows of inventory.tsv: index, word, class, slot, exposure, group, style, phones."""
         if self._inventory is None:
             path = self.folder / "inventory.tsv"
             lines = path.read_text(encoding="utf-8").splitlines()
             head = lines[0].split("\t")
             self._inventory = [dict(zip(head, ln.split("\t"))) for ln in lines[1:]]
         return self._inventory
+
+    def word_labels(self) -> dict[str, tuple[str, ...]]:
+        """Inventory word -> the labels scores are split by: its class, and "style:NAME" for an
+        invented name (corpora built before name styles have no style column)."""
+        if self._labels is None:
+            self._labels = {row["word"]: (row["class"],) + ((f"style:{row['style']}",) if row.get("style") else ())
+                            for row in self.inventory()}
+        return self._labels
 
     def biasing_list(self, i: int, size: int, confusable: bool = False) -> list[str]:
         """The utterance's rare words, then distractors, `size` entries in all (nested across sizes)."""

@@ -150,22 +150,30 @@ def score_utterance(
     ref: str,
     hyp: str,
     biasing_list: Iterable[str] = (),
-    word_class: Mapping[str, str] | None = None,
+    word_class: Mapping[str, str | Sequence[str]] | None = None,
 ) -> dict[str, int]:
     """Integer error counts of one utterance, from one word alignment.
 
     U-WER / B-WER split (Le et al., Interspeech 2021): a substitution or
     deletion counts to the class (biased or not) of its reference word; an
     insertion counts as biased when the inserted word is a list word.
+    U-WER is also kept in parts, so that fixing biased words cannot pass for a
+    U-WER gain: unbiased substitutions and deletions; unbiased insertions next
+    to a biased-word error (a name written as two words: "kal vin" for
+    "kalvin"), counted apart; and the other unbiased insertions.
     Precision / recall counts (Jain et al., Interspeech 2020): a word is
     correctly recognised when the alignment matches it ('C').
-    `word_class` maps list entries to a rare-word class; per-class counts cover
-    biased reference words only (insertions have no class), and biased words
-    whose entry has no class are counted in no class.
+    `word_class` maps list entries to one label or several (a class, a name
+    style); per-label counts cover biased reference words and biased
+    insertions (counted to the label of the inserted word), so with every
+    entry labelled the labels' errors add up to the biased errors.
 
     >>> c = score_utterance("call orla now", "call orlah now", ["orla"])
     >>> c["word_errors"], c["biased_errors"], c["unbiased_errors"], c["biased_correct"]
     (1, 1, 0, 0)
+    >>> c = score_utterance("call kalvin", "call kal vin", ["kalvin"])
+    >>> c["biased_errors"], c["unbiased_insertions"], c["unbiased_insertions_near_biased"]
+    (1, 1, 1)
     """
     entries = list(biasing_list)
     ref_words, hyp_words = ref.split(), hyp.split()
@@ -175,33 +183,62 @@ def score_utterance(
     cs, cd, ci, _ = edit_counts(ref_chars, hyp_chars)
     c = dict.fromkeys(
         ["substitutions", "deletions", "insertions", "biased_errors", "unbiased_errors",
-         "biased_insertions", "unbiased_insertions", "biased_correct", "hyp_list_correct"],
+         "biased_insertions", "unbiased_insertions", "unbiased_subdel", "unbiased_insertions_near_biased",
+         "biased_correct", "hyp_list_correct"],
         0,
     )
     per_class: dict[str, int] = {}
-    for op, i, j in align(ref_words, hyp_words):
+
+    def labels(entry: str | None) -> tuple[str, ...]:
+        if word_class is None or entry is None or entry not in word_class:
+            return ()
+        got = word_class[entry]
+        return (got,) if isinstance(got, str) else tuple(got)
+
+    def bump(label: str, part: str) -> None:
+        per_class[f"class:{label}:{part}"] = per_class.get(f"class:{label}:{part}", 0) + 1
+
+    ops = align(ref_words, hyp_words)
+    biased_error = [op in ("S", "D") and ref_cover[i] is not None for op, i, _ in ops]
+    for k, (op, i, j) in enumerate(ops):
         if op == "I":
             c["insertions"] += 1
-            side = "biased" if hyp_cover[j] is not None else "unbiased"
-            c[f"{side}_insertions"] += 1
-            c[f"{side}_errors"] += 1
+            if hyp_cover[j] is not None:
+                c["biased_insertions"] += 1
+                c["biased_errors"] += 1
+                for label in labels(hyp_cover[j]):
+                    bump(label, "errors")
+                continue
+            c["unbiased_insertions"] += 1
+            c["unbiased_errors"] += 1
+            # subtle: look past the other insertions of the same run ("ka l vin" for "kalvin")
+            before, after = k - 1, k + 1
+            while before >= 0 and ops[before][0] == "I":
+                before -= 1
+            while after < len(ops) and ops[after][0] == "I":
+                after += 1
+            near = (before >= 0 and biased_error[before]) or (after < len(ops) and biased_error[after])
+            c["unbiased_insertions_near_biased"] += near
             continue
         entry = ref_cover[i]
-        cls = word_class.get(entry) if (word_class is not None and entry is not None) else None
-        if cls is not None:
-            per_class[f"class:{cls}:words"] = per_class.get(f"class:{cls}:words", 0) + 1
+        for label in labels(entry):
+            bump(label, "words")
         if op == "C":
             c["biased_correct"] += entry is not None
             # subtle: with phrase entries a matched list word in the hypothesis can
             # sit on an unbiased reference word, so precision keeps its own count.
             c["hyp_list_correct"] += hyp_cover[j] is not None
-            if cls is not None:
-                per_class[f"class:{cls}:correct"] = per_class.get(f"class:{cls}:correct", 0) + 1
+            for label in labels(entry):
+                bump(label, "correct")
             continue
         c["substitutions" if op == "S" else "deletions"] += 1
-        c["biased_errors" if entry is not None else "unbiased_errors"] += 1
-        if cls is not None:
-            per_class[f"class:{cls}:errors"] = per_class.get(f"class:{cls}:errors", 0) + 1
+        if entry is not None:
+            c["biased_errors"] += 1
+        else:
+            c["unbiased_errors"] += 1
+            c["unbiased_subdel"] += 1
+        for label in labels(entry):
+            bump(label, "errors")
     in_ref = any(e is not None for e in ref_cover)
     in_hyp = any(e is not None for e in hyp_cover)
     n_biased = sum(e is not None for e in ref_cover)
@@ -220,8 +257,8 @@ def score_utterance(
     )
     for key in list(per_class):
         stem = key.rpartition(":")[0]
-        for field in ("words", "correct", "errors"):
-            per_class.setdefault(f"{stem}:{field}", 0)
+        for part in ("words", "correct", "errors"):
+            per_class.setdefault(f"{stem}:{part}", 0)
     c.update(per_class)
     return c
 
@@ -253,6 +290,12 @@ def summarize(counts: Iterable[dict[str, int]]) -> dict[str, float | int | None]
         "wer": _div(g("word_errors"), g("ref_words")),
         "cer": _div(g("char_errors"), g("ref_chars")),
         "uwer": _div(g("unbiased_errors"), g("unbiased_ref_words")),
+        # U-WER in parts (they add up to it): substitutions and deletions, insertions next to a
+        # biased-word error, other insertions
+        "uwer_subdel": _div(g("unbiased_subdel"), g("unbiased_ref_words")),
+        "uwer_ins_near_biased": _div(g("unbiased_insertions_near_biased"), g("unbiased_ref_words")),
+        "uwer_ins_other": _div(g("unbiased_insertions") - g("unbiased_insertions_near_biased"),
+                               g("unbiased_ref_words")),
         "bwer": _div(g("biased_errors"), g("biased_ref_words")),
         "precision": precision,
         "recall": recall,
@@ -342,8 +385,8 @@ RATE_KEYS = {
 
 
 def compare_systems(
-    counts_a: Sequence[dict[str, int]],
-    counts_b: Sequence[dict[str, int]],
+    counts_a: Mapping[str, dict[str, int]] | Sequence[dict[str, int]],
+    counts_b: Mapping[str, dict[str, int]] | Sequence[dict[str, int]],
     rate: str = "wer",
     n_resamples: int = 1000,
     seed: int = 0,
@@ -351,12 +394,25 @@ def compare_systems(
 ) -> dict[str, float | None]:
     """`paired_bootstrap` of one error rate between two systems scored on the same utterances.
 
-    >>> a = [score_utterance("a b", "a c"), score_utterance("c d", "c d")]
+    Given mappings utterance id -> counts, utterances are paired by id and two
+    different sets of ids are refused; given sequences, they are taken as
+    already paired by position.
+
+    >>> a = {"u1": score_utterance("a b", "a c"), "u2": score_utterance("c d", "c d")}
     >>> compare_systems(a, a)["delta"]
     0.0
     """
     if rate not in RATE_KEYS:
         raise ValueError(f"unknown rate {rate!r}; expected one of {sorted(RATE_KEYS)}")
+    if isinstance(counts_a, Mapping) != isinstance(counts_b, Mapping):
+        raise ValueError("give both systems' counts as mappings of utterance id -> counts, or both as sequences")
+    if isinstance(counts_a, Mapping):
+        only_a, only_b = sorted(set(counts_a) - set(counts_b)), sorted(set(counts_b) - set(counts_a))
+        if only_a or only_b:
+            raise ValueError(f"the two systems were scored on different utterances: {len(only_a)} only in A "
+                             f"(e.g. {only_a[:3]}), {len(only_b)} only in B (e.g. {only_b[:3]})")
+        ids = sorted(counts_a)
+        counts_a, counts_b = [counts_a[i] for i in ids], [counts_b[i] for i in ids]
     if len(counts_a) != len(counts_b):
         raise ValueError(
             f"both systems must be scored on the same utterances; got {len(counts_a)} and {len(counts_b)}"

@@ -32,6 +32,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
         item["list"] = split.biasing_list(item["index"], list_size, confusable) if list_size else []
         return item
 
+    labels = split.word_labels()  # every inventory word -> its class (and name style)
     records, decode_s, audio_s = [], 0.0, 0.0
     hop = split.card["features"]["hop_ms"] / 1000.0
     with torch.no_grad():
@@ -47,8 +48,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             for k, h in enumerate(hyps):
                 hyp = decode(h)
                 spans = batch["spans"][k]
-                classes = {sp["word"]: sp["class"] for sp in spans}
-                counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], classes)
+                counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], labels)
                 records.append({"id": batch["ids"][k], "ref": batch["texts"][k], "hyp": hyp,
                                 "list_size": list_size, "spans": spans, "counts": counts})
     summary = summarize(r["counts"] for r in records)

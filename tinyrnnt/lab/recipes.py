@@ -1,4 +1,4 @@
-"""Recipes end to end: build the corpus if missing, train each run, evaluate, write a table.
+"""Recipes end to end: build the corpus if missing, train every arm, evaluate, write the tables.
 
 A recipe YAML is either the differences of one experiment from the defaults
 (`recipes/baseline.yaml`), or several runs that share settings:
@@ -6,16 +6,24 @@ A recipe YAML is either the differences of one experiment from the defaults
     shared: {...}            # differences every run gets
     runs:                    # run name -> its own differences
       baseline: {}
+      trie: {bias: {kind: trie}, train: {init_from: "run:baseline", steps: 700}}
+    seeds: [0, 1, 2]         # training seeds: every arm is trained once per seed
     evaluate:                # what to decode and score
       splits: [test, test_unseen]
       list_sizes: [0, 10, 100, 1000]
+
+Fair comparison is built in. Beside every biased run the recipe adds a
+*control arm*: the same configuration with no biasing input, so the same start
+(its `init_from`), the same steps, optimiser, learning-rate schedule (warm-up
+and restart included) and data order. Gains are reported against it; the run a
+biased arm starts from stays as a second reference. With `pairing:
+from_scratch`, every arm trains from nothing instead, for the steps its chain
+of `init_from` runs would have summed to. Budgets must be in steps
+(`train.steps`) wherever a control arm stands, so "equal training" is exact.
 """
 
 from __future__ import annotations
 
-import csv
-import io
-import json
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,11 +32,11 @@ import yaml
 
 from tinyrnnt import config as C
 from tinyrnnt.experiment import ExperimentConfig
-from tinyrnnt.lab.evaluate import write_atomic
+from tinyrnnt.resources import RECIPE_DIR
 
-RECIPE_DIR = Path(__file__).resolve().parents[2] / "recipes"
 DEFAULT_RECIPE = "trie_vs_baseline.yaml"  # what `tinyrnnt experiment` runs with no recipe named
-TABLE_KEYS = ("wer", "cer", "uwer", "bwer", "recall", "precision", "false_trigger_rate", "rare_recall:unseen")
+PAIRINGS = ("fine_tune", "from_scratch")
+CHECKPOINT_CHOICES = ("last", "best")
 
 
 @dataclass
@@ -36,6 +44,9 @@ class EvalPlan:
     splits: tuple[str, ...] = ("test", "test_unseen")
     list_sizes: tuple[int, ...] = (0, 100)
     limit: int = 0  # utterances per split (0 = all)
+    # "last": the weights after the whole budget (equal steps for every arm); "best": the
+    # checkpoint with the lowest valid CER (each arm then stops at its own step count).
+    checkpoint: str = "last"
 
 
 @dataclass
@@ -45,7 +56,23 @@ class Recipe:
     shared: dict = field(default_factory=dict)
     runs: dict = field(default_factory=lambda: {"baseline": {}})
     evaluate: EvalPlan = field(default_factory=EvalPlan)
-    parallel: int = 1  # runs trained at once, each in its own process (give each train.threads=1)
+    parallel: int = 1  # arms trained at once, each in its own process (give each train.threads=1)
+    seeds: tuple[int, ...] = (0,)  # training seeds (train.seed); every arm is trained once per seed
+    controls: bool = True  # an equal-steps control arm (no biasing input) beside every biased run
+    pairing: str = "fine_tune"  # or "from_scratch": no arm starts from another, steps summed
+
+
+@dataclass
+class Arm:
+    """One model to train: a recipe run (or a control) at one seed."""
+
+    key: str  # unique name: the run, plus "/seedS" when the recipe has several seeds
+    run: str  # recipe run name (controls: "<biased run>_control")
+    seed: int
+    cfg: ExperimentConfig
+    source: str | None = None  # key of the arm whose last checkpoint it starts from
+    control: str | None = None  # biased arms: key of their control arm
+    reference: str | None = None  # biased arms: key of the arm they fine-tune (second reference)
 
 
 def read_recipe(path: str | Path | None) -> Recipe:
@@ -54,13 +81,24 @@ def read_recipe(path: str | Path | None) -> Recipe:
     path = Path(path)
     if not path.is_file():
         raise C.ConfigError(f"{path}: recipe file not found")
-    data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+    try:
+        data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+    except yaml.YAMLError as err:
+        raise C.ConfigError(f"{path}: not valid YAML: {err}") from None
     if not isinstance(data, dict):
         raise C.ConfigError(f"{path}: a recipe is a mapping")
     if "runs" not in data:  # a single experiment's differences
         data = {"name": path.stem, "shared": data, "runs": {data.get("name", path.stem): {}}}
     data.setdefault("name", path.stem)
-    return C.from_dict(Recipe, data, str(path))
+    recipe = C.from_dict(Recipe, data, str(path))
+    if recipe.pairing not in PAIRINGS:
+        raise C.ConfigError(f"{path}: pairing must be one of {PAIRINGS}, got {recipe.pairing!r}")
+    if recipe.evaluate.checkpoint not in CHECKPOINT_CHOICES:
+        raise C.ConfigError(f"{path}: evaluate.checkpoint must be one of {CHECKPOINT_CHOICES}, "
+                            f"got {recipe.evaluate.checkpoint!r}")
+    if not recipe.seeds or len(set(recipe.seeds)) != len(recipe.seeds):
+        raise C.ConfigError(f"{path}: seeds must be a non-empty list of distinct whole numbers, got {recipe.seeds}")
+    return recipe
 
 
 def run_config(recipe: Recipe, run: str, overrides=()) -> ExperimentConfig:
@@ -70,6 +108,84 @@ def run_config(recipe: Recipe, run: str, overrides=()) -> ExperimentConfig:
     merged["run_dir"] = str(Path(recipe.out_dir) / recipe.name / run)
     cfg = C.from_dict(ExperimentConfig, merged, f"recipe {recipe.name}, run {run}")
     return C.apply_overrides(cfg, list(overrides))
+
+
+def _source(cfg: ExperimentConfig) -> str | None:
+    start = cfg.train.init_from
+    return start[len("run:"):] if start.startswith("run:") else None
+
+
+def expand_arms(recipe: Recipe, overrides=()) -> dict[str, Arm]:
+    """Every arm to train, in an order where each arm comes after the one it starts from."""
+    configs = {run: run_config(recipe, run, overrides) for run in recipe.runs}
+    for run, cfg in configs.items():
+        src = _source(cfg)
+        if src is not None and src not in configs:
+            raise C.ConfigError(f"run {run!r}: train.init_from names run {src!r}, which the recipe lacks; "
+                                f"runs: {list(configs)}")
+        if src is not None and list(configs).index(src) > list(configs).index(run):
+            raise C.ConfigError(f"run {run!r}: train.init_from names run {src!r}, which must come earlier "
+                                f"in the recipe; runs: {list(configs)}")
+
+    def chain_steps(run: str) -> int:
+        cfg = configs[run]
+        if cfg.train.steps == 0:
+            raise C.ConfigError(f"run {run!r}: pairing from_scratch needs step budgets (train.steps) "
+                                "on every run of the chain")
+        src = _source(cfg)
+        return cfg.train.steps + (chain_steps(src) if src else 0)
+
+    plans: dict[str, tuple[ExperimentConfig, str | None]] = {}  # run -> (config, source run)
+    controls: dict[str, str] = {}  # biased run -> its control run
+    for run, cfg in configs.items():
+        if recipe.pairing == "from_scratch" and _source(cfg):
+            cfg = C.apply_overrides(cfg, ["train.init_from=", f"train.steps={chain_steps(run)}"])
+        plans[run] = (cfg, _source(cfg))
+    if recipe.controls:
+        for run, (cfg, src) in list(plans.items()):
+            if cfg.bias.kind == "none":
+                continue
+            if cfg.train.steps == 0:
+                raise C.ConfigError(f"run {run!r}: a control arm needs a step budget; set train.steps "
+                                    "(or `controls: false` in the recipe for a quick look)")
+            twin = C.apply_overrides(cfg, ["bias={}"])
+            same = [r for r, (c, _) in plans.items() if _same_training(c, twin)]
+            if same:  # an earlier run or control already trains exactly this
+                controls[run] = same[0]
+                continue
+            name = f"{run}_control"
+            twin = C.apply_overrides(twin, [f"name={name}", f"run_dir={Path(cfg.run_dir).parent / name}"])
+            plans[name] = (twin, src)
+            controls[run] = name
+    arms: dict[str, Arm] = {}
+    many = len(recipe.seeds) > 1
+    for seed in recipe.seeds:
+        def key(run: str) -> str:
+            return f"{run}/seed{seed}" if many else run
+
+        for run, (cfg, src) in _ordered(plans):
+            sets = [f"train.seed={seed}"] + ([f"run_dir={Path(cfg.run_dir) / f'seed{seed}'}"] if many else [])
+            arms[key(run)] = Arm(key(run), run, seed, C.apply_overrides(cfg, sets),
+                                 source=key(src) if src else None,
+                                 control=key(controls[run]) if run in controls else None,
+                                 reference=key(src) if (src and run in controls) else None)
+    return arms
+
+
+def _same_training(a: ExperimentConfig, b: ExperimentConfig) -> bool:
+    strip = lambda c: {k: v for k, v in C.to_dict(c).items() if k not in ("name", "run_dir")}  # noqa: E731
+    return strip(a) == strip(b)
+
+
+def _ordered(plans: dict) -> list:
+    """Runs so that each comes after its source (controls were appended after their sources)."""
+    done: list[str] = []
+    while len(done) < len(plans):
+        for run, (_, src) in plans.items():
+            if run not in done and (src is None or src in done):
+                done.append(run)
+                break
+    return [(run, plans[run]) for run in done]
 
 
 def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False) -> None:
@@ -82,88 +198,58 @@ def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False) -> None:
             print(format_card(card), file=sys.stderr)
 
 
-def run_recipe(path=None, overrides=(), quiet: bool = False) -> list[dict]:
-    from tinyrnnt.data import CorpusSplit
-    from tinyrnnt.lab.evaluate import evaluate, save_results
-    from tinyrnnt.lab.train import load_model
-
-    recipe = read_recipe(path)
-    configs = {run: run_config(recipe, run, overrides) for run in recipe.runs}
-    for cfg in configs.values():
-        ensure_corpus(cfg, quiet)
-    results = train_all(configs, recipe.parallel, quiet)
-    rows = []
-    for run, cfg in configs.items():
-        result = results[run]
-        model, _, _ = load_model(result["best_checkpoint"])
-        for split_name in recipe.evaluate.splits:
-            split = CorpusSplit(cfg.data.corpus, split_name)
-            for n in recipe.evaluate.list_sizes:
-                records, summary = evaluate(model, split, list_size=n, max_symbols=cfg.decode.max_symbols,
-                                            limit=recipe.evaluate.limit or None)
-                save_results(Path(cfg.run_dir) / "results", f"{split_name}.n{n}", records, summary)
-                rows.append({"run": run, "split": split_name, "list_size": n,
-                             "train_minutes": round(result["train_seconds"] / 60, 2),
-                             **{k: summary.get(k) for k in TABLE_KEYS}})
-    write_table(Path(recipe.out_dir) / recipe.name, rows)
-    print(markdown_table(rows))
-    return rows
-
-
 def _train_one(cfg: ExperimentConfig, quiet: bool) -> dict:
     from tinyrnnt.lab.train import train
 
     r = train(cfg, quiet=quiet)
-    return {"best_checkpoint": str(r.best_checkpoint), "train_seconds": r.train_seconds, "steps": r.steps}
+    return {"best_checkpoint": str(r.best_checkpoint), "last_checkpoint": str(r.last_checkpoint),
+            "train_seconds": r.train_seconds, "steps": r.steps, "history": r.history}
 
 
-def train_all(configs: dict[str, ExperimentConfig], parallel: int, quiet: bool) -> dict[str, dict]:
-    """Train every run; with parallel > 1, that many at once in separate processes.
+def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool) -> dict[str, dict]:
+    """Train every arm, each once its source has finished; with parallel > 1, that many at once.
 
     On 2 cores two one-thread runs side by side finish sooner than the same runs
     one after the other with two threads each (measured: a second thread buys ~1.3x).
+    An arm that starts from another takes that arm's *last* checkpoint, so its
+    history counts exactly the steps of its source.
     """
-    chained = any(cfg.train.init_from.startswith("run:") for cfg in configs.values())
-    if parallel <= 1 or len(configs) == 1 or chained:
-        done: dict[str, dict] = {}
-        for run, cfg in configs.items():  # in recipe order, so a run can start from an earlier one
-            if cfg.train.init_from.startswith("run:"):
-                source = cfg.train.init_from[len("run:"):]
-                if source not in done:
-                    raise C.ConfigError(f"run {run!r}: train.init_from names run {source!r}, "
-                                        f"which must come earlier in the recipe; runs: {list(configs)}")
-                cfg = C.apply_overrides(cfg, [f"train.init_from={done[source]['best_checkpoint']}"])
-            done[run] = _train_one(cfg, quiet)
+    def ready_config(arm: Arm, done: dict) -> ExperimentConfig:
+        if arm.source is None:
+            return arm.cfg
+        return C.apply_overrides(arm.cfg, [f"train.init_from={done[arm.source]['last_checkpoint']}"])
+
+    done: dict[str, dict] = {}
+    if parallel <= 1 or len(arms) == 1:
+        for key, arm in arms.items():
+            done[key] = _train_one(ready_config(arm, done), quiet)
         return done
     import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
+    pending = dict(arms)
     with ProcessPoolExecutor(max_workers=parallel, mp_context=mp.get_context("spawn")) as pool:
-        futures = {run: pool.submit(_train_one, cfg, True) for run, cfg in configs.items()}
-        return {run: f.result() for run, f in futures.items()}
+        running = {}
+        while pending or running:
+            for key in [k for k, a in pending.items() if a.source is None or a.source in done]:
+                if len(running) >= parallel:
+                    break
+                running[pool.submit(_train_one, ready_config(pending.pop(key), done), True)] = key
+            finished, _ = wait(running, return_when=FIRST_COMPLETED)
+            for f in finished:
+                done[running.pop(f)] = f.result()
+    return {key: done[key] for key in arms}
 
 
-def _fmt(v) -> str:
-    if v is None:
-        return "-"
-    return f"{v:.3f}" if isinstance(v, float) else str(v)
+def run_recipe(path=None, overrides=(), quiet: bool = False) -> list[dict]:
+    from tinyrnnt.lab.tables import evaluate_arms, write_tables
 
-
-def markdown_table(rows: list[dict]) -> str:
-    if not rows:
-        return "(no results)"
-    keys = list(rows[0])
-    lines = ["| " + " | ".join(keys) + " |", "|" + "---|" * len(keys)]
-    lines += ["| " + " | ".join(_fmt(r[k]) for k in keys) + " |" for r in rows]
-    return "\n".join(lines)
-
-
-def write_table(folder: Path, rows: list[dict]) -> None:
-    buf = io.StringIO()
-    if rows:
-        w = csv.DictWriter(buf, fieldnames=list(rows[0]))
-        w.writeheader()
-        w.writerows(rows)
-    write_atomic(folder / "results.csv", buf.getvalue())
-    write_atomic(folder / "results.json", json.dumps(rows, indent=1) + "\n")
-    write_atomic(folder / "results.md", markdown_table(rows) + "\n")
+    recipe = read_recipe(path)
+    arms = expand_arms(recipe, overrides)
+    for arm in arms.values():
+        ensure_corpus(arm.cfg, quiet)
+    trained = train_arms(arms, recipe.parallel, quiet)
+    results = evaluate_arms(arms, trained, recipe.evaluate, quiet)
+    tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
+    print(tables["markdown"])
+    return tables["rows"]

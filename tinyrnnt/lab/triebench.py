@@ -1,4 +1,12 @@
-"""The `trie` benchmark: trie-based deep biasing against the baseline, the whole recipe timed."""
+"""The `trie` benchmark: trie-based deep biasing against its equal-steps control arm and the baseline.
+
+The recipe (recipes/trie_vs_baseline.yaml) trains a baseline for a step budget,
+then the trie arm and its control from the baseline's last checkpoint for the
+same steps, schedule and data order. Gains are stated against the control; the
+baseline stays as a second reference. Also measured: the held-out name style,
+sound-alike false triggers, a repeated short run for determinism, the cue's
+cost against list size, and the whole recipe's time.
+"""
 
 from __future__ import annotations
 
@@ -8,8 +16,10 @@ import time
 from pathlib import Path
 
 from tinyrnnt.lab.evaluate import evaluate, save_results, write_atomic
+from tinyrnnt.resources import RECIPE_DIR
 
-RECIPE = Path(__file__).resolve().parents[2] / "recipes" / "trie_vs_baseline.yaml"
+RECIPE = RECIPE_DIR / "trie_vs_baseline.yaml"
+HELDOUT = "style:reed"  # label of the held-out name style in the default corpus
 
 
 def _log(msg: str) -> None:
@@ -35,12 +45,37 @@ def cue_cost_ratio(repeats: int = 9) -> tuple[float, float, float]:
     return s, g, g / s
 
 
+def _without_timing(summary: dict) -> dict:
+    return {k: v for k, v in summary.items() if k not in ("decode_seconds", "rtf")}
+
+
+def repeat_check(cfg, start_checkpoint: str, corpus: str, folder: Path, steps: int = 20) -> bool:
+    """Two short runs of the same arm with the same seed and steps: identical weights and metrics?"""
+    import torch
+
+    from tinyrnnt import config as C
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.lab.train import load_model, train
+
+    outcomes = []
+    for name in ("a", "b"):
+        c = C.apply_overrides(cfg, [f"run_dir={folder / name}", f"train.steps={steps}", "train.minutes=0",
+                                    f"train.init_from={start_checkpoint}", "train.validate_every_steps=100000"])
+        result = train(c, quiet=True)
+        model = load_model(result.last_checkpoint)[0]
+        _, summary = evaluate(model, CorpusSplit(corpus, "test_unseen", limit=200), list_size=100)
+        outcomes.append((model.state_dict(), _without_timing(summary)))
+    (wa, sa), (wb, sb) = outcomes
+    return all(torch.equal(wa[k], wb[k]) for k in wa) and sa == sb
+
+
 def run_trie_bench(args) -> dict:
     import torch
 
+    from tinyrnnt import config as C
     from tinyrnnt.data import CorpusSplit
-    from tinyrnnt.lab.recipes import ensure_corpus, read_recipe, run_config, train_all
-    from tinyrnnt.lab.train import load_model
+    from tinyrnnt.lab.recipes import ensure_corpus, expand_arms, read_recipe, train_arms
+    from tinyrnnt.lab.train import load_model, read_history
     from tinyrnnt.score import compare_systems
 
     small, large, ratio = cue_cost_ratio()
@@ -48,73 +83,119 @@ def run_trie_bench(args) -> dict:
     recipe = read_recipe(RECIPE)
     recipe.out_dir = str(Path(args.run_dir).parent)
     recipe.name = Path(args.run_dir).name
+    recipe.seeds = tuple(range(args.seeds))
     overrides = [f"data.corpus={args.corpus}"] + ([f"train.minutes={args.minutes}"] if args.minutes else [])
-    configs = {run: run_config(recipe, run, overrides) for run in recipe.runs}
+    arms = expand_arms(recipe, overrides)
     t_start = time.perf_counter()
-    ensure_corpus(configs["baseline"])
+    ensure_corpus(next(iter(arms.values())).cfg)
     corpus_s = json.loads((Path(args.corpus) / "build.json").read_text())["build_seconds"]
     facts_path = Path(args.run_dir) / "trained.json"
-    if args.fresh or not facts_path.is_file():
+    wanted = {key: C.to_dict(arm.cfg) for key, arm in arms.items()}
+    trained = json.loads(facts_path.read_text()) if facts_path.is_file() else None
+    if trained is not None and trained.get("configs") != wanted:
+        _log(f"{facts_path} was trained with other settings: training again")
+        trained = None
+    if args.fresh or trained is None:
         t0 = time.perf_counter()
-        trained = train_all(configs, recipe.parallel, quiet=True)
-        trained["wall_seconds"] = time.perf_counter() - t0
+        trained = {"arms": train_arms(arms, recipe.parallel, quiet=True), "configs": wanted,
+                   "wall_seconds": time.perf_counter() - t0}
         write_atomic(facts_path, json.dumps(trained, indent=1))
     else:
-        trained = json.loads(facts_path.read_text())
-        _log(f"{facts_path} exists: evaluating those models (use --fresh to train again)")
+        _log(f"*** REUSING EARLIER TRAINING from {facts_path} (trained {trained['wall_seconds']:.0f} s); "
+             "its figures are quoted as they were. Use --fresh to train again. ***")
     t_eval = time.perf_counter()
     torch.set_num_threads(2)
-    models = {run: load_model(trained[run]["best_checkpoint"])[0] for run in configs}
-    plan = [("test_unseen", n, False) for n in (0, 10, 100, 1000)] + [("test_unseen", 100, True), ("test", 0, False)]
+    plan = [("test_unseen", n, False) for n in (0, 10, 100, 1000)] + [
+        ("test_unseen", 100, True), ("test", 0, False), ("test_soundalike", 100, False)]
     results: dict[tuple, tuple] = {}
-    for split_name, n, confusable in plan:
-        split = CorpusSplit(args.corpus, split_name)
-        for run, model in models.items():
+    for key in arms:
+        model = load_model(trained["arms"][key]["last_checkpoint"])[0]
+        for split_name, n, confusable in plan:
+            split = CorpusSplit(args.corpus, split_name)
             records, summary = evaluate(model, split, list_size=n, confusable=confusable)
             name = f"{split_name}.n{n}" + (".confusable" if confusable else "")
-            save_results(Path(configs[run].run_dir) / "results", name, records, summary)
-            results[(run, split_name, n, confusable)] = (records, summary)
-            _log(f"{run:9s} {name:24s} WER {summary['wer']:.3f} U-WER {summary['uwer'] or 0:.3f} "
+            save_results(Path(arms[key].cfg.run_dir) / "results", name, records, summary)
+            results[(key, split_name, n, confusable)] = (records, summary)
+            _log(f"{key:20s} {name:28s} WER {summary['wer']:.3f} U-WER {summary['uwer'] or 0:.3f} "
                  f"B-WER {summary['bwer'] if summary['bwer'] is not None else float('nan'):.3f} "
-                 f"recall {summary['recall'] if summary['recall'] is not None else float('nan'):.3f} "
                  f"false-trigger {summary['false_trigger_rate'] or 0:.3f}")
     eval_s = time.perf_counter() - t_eval
+    first = f"/seed{recipe.seeds[0]}" if len(recipe.seeds) > 1 else ""
+    trie_arm = arms[f"trie{first}"]
+    t_check = time.perf_counter()
+    same = repeat_check(trie_arm.cfg, trained["arms"][trie_arm.source]["last_checkpoint"], args.corpus,
+                        Path(args.run_dir) / "repeat")
+    check_s = time.perf_counter() - t_check
+    _log(f"repeated short run gives identical weights and metrics: {same} ({check_s:.0f} s)")
 
-    def s(run, split="test_unseen", n=100, confusable=False):
-        return results[(run, split, n, confusable)][1]
+    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first):
+        return results[(run + seed_key, split, n, confusable)][1]
 
-    def counts(run, split="test_unseen", n=100, confusable=False):
-        return [r["counts"] for r in results[(run, split, n, confusable)][0]]
+    def counts(run, split="test_unseen", n=100, seed_key=first):
+        return {r["id"]: r["counts"] for r in results[(run + seed_key, split, n, False)][0]}
+
+    def reduction(seed_key=first):
+        return 1 - s("trie", seed_key=seed_key)["bwer"] / s("trie_control", seed_key=seed_key)["bwer"]
 
     bwer_ci = compare_systems(counts("baseline"), counts("trie"), rate="bwer")
-    uwer_ci = compare_systems(counts("baseline"), counts("trie"), rate="uwer")
-    # the corpus part is its recorded build time (built now or earlier), so the figure is the whole recipe
+    ctl_ci = compare_systems(counts("trie_control"), counts("trie"), rate="bwer")
+    uwer_ctl_ci = compare_systems(counts("trie_control"), counts("trie"), rate="uwer")
+    wer0_ctl_ci = compare_systems(counts("trie_control", "test", 0), counts("trie", "test", 0), rate="wer")
     recipe_s = corpus_s + trained["wall_seconds"] + eval_s
     r3 = lambda v: None if v is None else round(v, 4)  # noqa: E731
+    seeds = [f"/seed{k}" for k in recipe.seeds] if len(recipe.seeds) > 1 else [""]
+    reductions = [round(reduction(k), 4) for k in seeds]
     out = {
         "bwer_baseline_n100": r3(s("baseline")["bwer"]),
+        "bwer_control_n100": r3(s("trie_control")["bwer"]),
         "bwer_trie_n100": r3(s("trie")["bwer"]),
+        "bwer_reduction_vs_control_n100": r3(reduction()),
+        "bwer_delta_vs_control_ci95_n100": [r3(ctl_ci["low"]), r3(ctl_ci["high"])],
         "bwer_relative_reduction_n100": r3(1 - s("trie")["bwer"] / s("baseline")["bwer"]),
         "bwer_delta_ci95_n100": [r3(bwer_ci["low"]), r3(bwer_ci["high"])],
         "uwer_baseline_n100": r3(s("baseline")["uwer"]),
+        "uwer_control_n100": r3(s("trie_control")["uwer"]),
         "uwer_trie_n100": r3(s("trie")["uwer"]),
-        "uwer_delta_ci95_n100": [r3(uwer_ci["low"]), r3(uwer_ci["high"])],
+        "uwer_delta_vs_control_ci95_n100": [r3(uwer_ctl_ci["low"]), r3(uwer_ctl_ci["high"])],
+        "uwer_parts_control_n100": {k: r3(s("trie_control")[k]) for k in ("uwer_subdel", "uwer_ins_near_biased", "uwer_ins_other")},
+        "uwer_parts_trie_n100": {k: r3(s("trie")[k]) for k in ("uwer_subdel", "uwer_ins_near_biased", "uwer_ins_other")},
         "false_trigger_baseline": r3(s("baseline")["false_trigger_rate"]),
+        "false_trigger_control": r3(s("trie_control")["false_trigger_rate"]),
         "false_trigger_trie": r3(s("trie")["false_trigger_rate"]),
+        "false_trigger_soundalike_baseline": r3(s("baseline", "test_soundalike")["false_trigger_rate"]),
+        "false_trigger_soundalike_control": r3(s("trie_control", "test_soundalike")["false_trigger_rate"]),
+        "false_trigger_soundalike_trie": r3(s("trie", "test_soundalike")["false_trigger_rate"]),
         "recall_baseline_n100": r3(s("baseline")["recall"]),
+        "recall_control_n100": r3(s("trie_control")["recall"]),
         "recall_trie_n100": r3(s("trie")["recall"]),
         "bwer_baseline_n10": r3(s("baseline", n=10)["bwer"]),
         "bwer_trie_n10": r3(s("trie", n=10)["bwer"]),
+        "bwer_control_n10": r3(s("trie_control", n=10)["bwer"]),
         "bwer_baseline_n1000": r3(s("baseline", n=1000)["bwer"]),
         "bwer_trie_n1000": r3(s("trie", n=1000)["bwer"]),
+        "bwer_control_n1000": r3(s("trie_control", n=1000)["bwer"]),
+        "bwer_control_heldout_style_n100": r3(s("trie_control").get(f"bwer:{HELDOUT}")),
+        "bwer_trie_heldout_style_n100": r3(s("trie").get(f"bwer:{HELDOUT}")),
+        "recall_control_heldout_style_n100": r3(s("trie_control").get(f"recall:{HELDOUT}")),
+        "recall_trie_heldout_style_n100": r3(s("trie").get(f"recall:{HELDOUT}")),
+        "bwer_by_style_n100": {arm: {k[len("bwer:style:"):]: r3(v) for k, v in s(arm).items()
+                                     if k.startswith("bwer:style:")} for arm in ("trie_control", "trie")},
+        "bwer_by_class_n100": {arm: {k[len("bwer:"):]: r3(v) for k, v in s(arm).items()
+                                     if k.startswith("bwer:") and not k.startswith("bwer:style:")}
+                               for arm in ("trie_control", "trie")},
+        "bwer_reduction_vs_control_seeds": reductions,
         "cue_cost_ratio_5000_10": round(ratio, 3),
         "cue_ms_n10": round(small, 3),
         "cue_ms_n5000": round(large, 3),
         "recipe_s": round(recipe_s, 1),
-        "recipe_parts_s": {"corpus": corpus_s, "training": round(trained["wall_seconds"], 1), "evaluation": round(eval_s, 1)},
+        "recipe_parts_s": {"corpus": corpus_s, "training": round(trained["wall_seconds"], 1),
+                           "evaluation": round(eval_s, 1), "repeat_check": round(check_s, 1)},
         "wer_baseline_n0": r3(s("baseline", "test", 0)["wer"]),
+        "wer_control_n0": r3(s("trie_control", "test", 0)["wer"]),
         "wer_trie_n0": r3(s("trie", "test", 0)["wer"]),
+        "wer_delta_vs_control_ci95_n0": [r3(wer0_ctl_ci["low"]), r3(wer0_ctl_ci["high"])],
         "familiar_recall_baseline_n0": r3(s("baseline", "test", 0).get("rare_recall:frequent")),
+        "familiar_recall_control_n0": r3(s("trie_control", "test", 0).get("rare_recall:frequent")),
         "familiar_recall_trie_n0": r3(s("trie", "test", 0).get("rare_recall:frequent")),
         "wer_baseline_unseen_n0": r3(s("baseline", n=0)["wer"]),
         "wer_trie_unseen_n0": r3(s("trie", n=0)["wer"]),
@@ -122,7 +203,18 @@ def run_trie_bench(args) -> dict:
         "recall_trie_homophone_n100": r3(s("trie", confusable=True)["recall"]),
         "false_trigger_trie_homophone_n100": r3(s("trie", confusable=True)["false_trigger_rate"]),
         "bwer_trie_homophone_n100": r3(s("trie", confusable=True)["bwer"]),
-        "train_minutes": {run: round(trained[run]["train_seconds"] / 60, 2) for run in configs},
+        "train_steps": {key: read_history(trained["arms"][key]["last_checkpoint"])["steps"] for key in arms},
+        "train_seconds": {key: round(read_history(trained["arms"][key]["last_checkpoint"])["seconds"], 1)
+                          for key in arms},
+        "train_minutes": {key: round(read_history(trained["arms"][key]["last_checkpoint"])["seconds"] / 60, 2)
+                          for key in arms},
+        "same_seed_same_metrics": same,
+        "seeds": list(recipe.seeds),
         "bench_wall_s": round(time.perf_counter() - t_start, 1),
     }
+    if len(seeds) > 1:
+        import statistics
+
+        out["bwer_reduction_vs_control_seeds_mean"] = round(statistics.fmean(reductions), 4)
+        out["bwer_reduction_vs_control_seeds_sd"] = round(statistics.stdev(reductions), 4)
     return out

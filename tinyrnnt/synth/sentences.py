@@ -9,7 +9,9 @@ uses it. Whole homophone groups share one exposure:
 - ``few_shot``: one to three times in training text;
 - ``unseen_valid`` / ``unseen_test``: never in training text; the valid and
   the unseen test split use them;
-- ``distractor``: never spoken; biasing lists draw on them.
+- ``distractor``: never spoken; biasing lists draw on them;
+- ``soundalike``: never spoken, but sounds like common words of the sound-alike
+  test split (tinyrnnt.synth.soundalike), whose lists lead with them.
 
 This module writes no files and renders no audio.
 """
@@ -24,7 +26,7 @@ import numpy as np
 from tinyrnnt.synth.lexicon import common_words, compounds, invented_names
 from tinyrnnt.synth.scenario import FILLER_SLOT, Scenario
 
-EXPOSURES = ("frequent", "few_shot", "unseen_valid", "unseen_test", "distractor")
+EXPOSURES = ("frequent", "few_shot", "unseen_valid", "unseen_test", "distractor", "soundalike")
 SEEN = ("frequent", "few_shot")
 
 
@@ -43,6 +45,12 @@ class TextConfig:
     # words, the rest with familiar ones. Kept at 0.15, below training's share, so the in-domain
     # test stays mostly about familiar words; few-shot words are scored per exposure anyway.
     test_few_shot_share: float = 0.15
+    # Invented names in other name styles (tinyrnnt.synth.styles): style -> spellings, beside the
+    # n_invented_names of the plain style. Seen extra styles appear in training only as few-shot
+    # words (no familiar ones), so a biasing input learns to follow a list that disagrees with habit.
+    extra_styles: dict = field(default_factory=lambda: {"fell": 1200, "reed": 500})
+    # Styles held out of training text and training lists: all their names are unseen test names.
+    heldout_styles: tuple[str, ...] = ("reed",)
 
 
 @dataclass(frozen=True)
@@ -53,13 +61,15 @@ class RareWord:
     phones: tuple[str, ...]
     group: int
     exposure: str
+    style: str = ""  # name style of an invented name ("" for other classes and user words)
 
 
 @dataclass
 class Sentence:
     words: list[str]
     phones: list[str]  # ARPAbet, "pau" at phrase boundaries; no word boundaries by design
-    spans: list[dict] = field(default_factory=list)  # rare words: index, word, class, exposure
+    spans: list[dict] = field(default_factory=list)  # rare words: index, word, class, exposure, style
+    soundalikes: list[str] = field(default_factory=list)  # list entries that sound like its words
 
     @property
     def text(self) -> str:
@@ -67,40 +77,65 @@ class Sentence:
 
 
 def build_inventory(scn: Scenario, cfg: TextConfig, rng: np.random.Generator) -> list[RareWord]:
-    """Every rare word of the scenario, grouped by sound, with its exposure."""
-    by_class: dict[str, list[tuple[tuple[str, ...], list[tuple[str, str]]]]] = defaultdict(list)
+    """Every rare word of the scenario, grouped by sound, with its exposure.
+
+    Exposures are cut per class and name style: the plain style and the other classes get
+    familiar, few-shot, unseen and distractor groups; seen extra styles the same without
+    familiar groups; held-out styles are unseen test words only.
+    """
+    from tinyrnnt.synth.styles import STYLES, style
+
+    for name in list(cfg.extra_styles) + list(cfg.heldout_styles):
+        style(name)  # unknown style names fail here, listing the known ones
+    unknown = sorted(set(cfg.heldout_styles) - set(cfg.extra_styles) - {"plain"})
+    if unknown:
+        raise ValueError(f"text.heldout_styles {unknown} are not among the corpus's styles "
+                         f"(plain and text.extra_styles {sorted(cfg.extra_styles)})")
+    # (class, style) -> groups of (phones, [(word, slot), ...])
+    by_kind: dict[tuple[str, str], list[tuple[tuple[str, ...], list[tuple[str, str]]]]] = defaultdict(list)
     name_slots = [s for s, c in scn.entity_slots.items() if c == "invented_name" and s not in scn.user_entities]
     for slot, words in scn.user_entities.items():
         groups: dict[tuple[str, ...], list[tuple[str, str]]] = defaultdict(list)
         for w in dict.fromkeys(words):
             groups[tuple(scn.lexicon.phones(w))].append((w, slot))
-        by_class[scn.entity_slots[slot]].extend(groups.items())
+        by_kind[(scn.entity_slots[slot], "")].extend(groups.items())
     if name_slots:
-        slot_of = _proportional_slots(name_slots, scn)
-        for i, g in enumerate(invented_names(cfg.n_invented_names, rng)):
-            slot = name_slots[slot_of(i)]
-            by_class["invented_name"].append((g.phones, [(s, slot) for s in g.spellings]))
+        used: set[str] = set()
+        taken: set[tuple[str, ...]] = set()
+        for name, count in {"plain": cfg.n_invented_names, **cfg.extra_styles}.items():
+            if not isinstance(count, int) or count < 0:
+                raise ValueError(f"text.extra_styles.{name}: expected a whole number of spellings >= 0, got {count!r}")
+            if count == 0:
+                continue
+            slot_of = _proportional_slots(name_slots, scn)
+            for i, g in enumerate(invented_names(count, rng, style=STYLES[name], used=used, taken=taken)):
+                slot = name_slots[slot_of(i)]
+                by_kind[("invented_name", name)].append((g.phones, [(s, slot) for s in g.spellings]))
     for slot, cls in scn.entity_slots.items():
         if slot in scn.user_entities:
             continue
         if cls == "rare_word":
-            by_class[cls].extend(((tuple(scn.lexicon.phones(w)), [(w, slot)]) for w in scn.rare_words))
+            by_kind[(cls, "")].extend(((tuple(scn.lexicon.phones(w)), [(w, slot)]) for w in scn.rare_words))
         elif cls == "compound":
             for word, (a, b) in compounds(cfg.n_compounds, rng, scn.compound_parts):
                 phones = tuple(scn.lexicon.phones(a) + scn.lexicon.phones(b))
-                by_class[cls].append((phones, [(word, slot)]))
+                by_kind[(cls, "")].append((phones, [(word, slot)]))
     inventory: list[RareWord] = []
     group_id = 0
-    for cls in sorted(by_class):
-        groups = by_class[cls]
+    for cls, sty in sorted(by_kind):
+        groups = by_kind[(cls, sty)]
         order = rng.permutation(len(groups))
         n = len(groups)
-        cuts = np.cumsum([min(cfg.frequent_groups, n // 4), round(cfg.few_shot_share * n),
-                          round(cfg.unseen_valid_share * n), round(cfg.unseen_test_share * n)])
+        if sty in cfg.heldout_styles:
+            cuts = np.array([0, 0, 0, n])  # every group an unseen test group
+        else:
+            familiar = min(cfg.frequent_groups, n // 4) if sty in ("", "plain") else 0
+            cuts = np.cumsum([familiar, round(cfg.few_shot_share * n),
+                              round(cfg.unseen_valid_share * n), round(cfg.unseen_test_share * n)])
         for rank, gi in enumerate(order):
             exposure = EXPOSURES[int(np.searchsorted(cuts, rank, side="right"))]
             phones, members = groups[gi]
-            inventory.extend(RareWord(w, cls, slot, phones, group_id, exposure) for w, slot in members)
+            inventory.extend(RareWord(w, cls, slot, phones, group_id, exposure, sty) for w, slot in members)
             group_id += 1
     return inventory
 
@@ -146,13 +181,16 @@ class SentenceMaker:
             self._phones[word] = self.scn.lexicon.phones(word)
         return self._phones[word]
 
-    def skeletons(self, n: int, rng: np.random.Generator) -> list[list[tuple[str, str]]]:
-        """n sentences with common words filled in and entity slots left open."""
+    def skeletons(self, n: int, rng: np.random.Generator,
+                  templates: list[int] | None = None) -> list[list[tuple[str, str]]]:
+        """n sentences with common words filled in and entity slots left open (from the templates
+        of the given indices, default all)."""
         out = []
-        templates = self.scn.templates
-        for ti in rng.integers(len(templates), size=n):
+        choice = list(range(len(self.scn.templates))) if templates is None else templates
+        for k in rng.integers(len(choice), size=n):
+            ti = choice[k]
             pieces: list[tuple[str, str]] = []
-            for kind, val in templates[ti].pieces:
+            for kind, val in self.scn.templates[ti].pieces:
                 if kind == "slot" and val == FILLER_SLOT:
                     lo, hi = self.scn.filler_words
                     k = int(rng.integers(lo, hi + 1))
@@ -214,7 +252,8 @@ class SentenceMaker:
                     e = allowed[int(rng.choice(len(allowed), p=p / p.sum()))] if len(allowed) > 1 else allowed[0]
                     pool = self.pools[(val, e)]
                     rw = pool[int(rng.integers(len(pool)))]
-                spans.append({"index": len(words), "word": rw.word, "class": rw.cls, "exposure": rw.exposure})
+                spans.append({"index": len(words), "word": rw.word, "class": rw.cls, "exposure": rw.exposure,
+                              "style": rw.style})
                 words.append(rw.word)
                 phones += rw.phones
             if phones and phones[-1] == "pau":

@@ -1,0 +1,160 @@
+"""Evaluate a recipe's arms and write its tables: results, comparisons against controls, seeds.
+
+Every results row says how much training stands behind it (total optimiser
+steps and training seconds, summed through `init_from`). Every comparison row
+names the arm it is measured against (the equal-steps control, or the run the
+arm started from), gives the paired-bootstrap 95 % interval of the difference
+(Bisani & Ney, ICASSP 2004) and says in words whether it excludes zero. With
+several training seeds a second table gives the mean and spread over seeds,
+which the per-utterance interval (test-set sampling only) does not cover.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import statistics
+import sys
+from pathlib import Path
+
+from tinyrnnt.lab.evaluate import write_atomic
+
+TABLE_KEYS = ("wer", "cer", "uwer", "uwer_subdel", "uwer_ins_near_biased", "bwer", "recall", "precision",
+              "false_trigger_rate", "rare_recall:unseen")
+COMPARED = ("wer", "uwer", "bwer")
+
+
+def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = False) -> dict:
+    """{(arm key, split, list size): (records, summary)}; summaries carry the checkpoint's history."""
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.lab.evaluate import evaluate, save_results
+    from tinyrnnt.lab.train import load_model, read_history
+
+    results = {}
+    for key, arm in arms.items():
+        ckpt = trained[key][f"{plan.checkpoint}_checkpoint"]
+        model, _, _ = load_model(ckpt)
+        history = read_history(ckpt)
+        for split_name in plan.splits:
+            split = CorpusSplit(arm.cfg.data.corpus, split_name)
+            for n in plan.list_sizes:
+                records, summary = evaluate(model, split, list_size=n, max_symbols=arm.cfg.decode.max_symbols,
+                                            limit=plan.limit or None)
+                summary["history"] = history
+                save_results(Path(arm.cfg.run_dir) / "results", f"{split_name}.n{n}", records, summary)
+                results[(key, split_name, n)] = (records, summary)
+                if not quiet:
+                    print(f"evaluated {key} on {split_name} at N={n}: WER {summary['wer']:.3f}", file=sys.stderr)
+    return results
+
+
+def result_rows(arms: dict, results: dict) -> list[dict]:
+    rows = []
+    for (key, split, n), (_, summary) in results.items():
+        arm = arms[key]
+        rows.append({"run": arm.run, "seed": arm.seed, "split": split, "list_size": n,
+                     "steps": summary["history"]["steps"], "train_s": round(summary["history"]["seconds"], 1),
+                     **{k: summary.get(k) for k in TABLE_KEYS}})
+    return rows
+
+
+def verdict(cmp: dict) -> str:
+    """Plain words for one interval of a difference (system minus reference).
+
+    >>> verdict({"low": -0.3, "high": -0.1}), verdict({"low": -0.1, "high": 0.2})
+    ('lower, interval excludes zero', 'no clear difference (interval spans zero)')
+    """
+    if cmp["low"] is None:
+        return "no rate (no words of this kind)"
+    if cmp["high"] < 0:
+        return "lower, interval excludes zero"
+    if cmp["low"] > 0:
+        return "higher, interval excludes zero"
+    return "no clear difference (interval spans zero)"
+
+
+def comparison_rows(arms: dict, results: dict) -> list[dict]:
+    """Each biased arm against its control and against the arm it started from."""
+    from tinyrnnt.score import compare_systems
+
+    rows = []
+    for (key, split, n), (records, summary) in results.items():
+        arm = arms[key]
+        for role, other in (("control", arm.control), ("start", arm.reference)):
+            if other is None:
+                continue
+            theirs, their_summary = results[(other, split, n)]
+            mine = {r["id"]: r["counts"] for r in records}
+            them = {r["id"]: r["counts"] for r in theirs}
+            for rate in COMPARED:
+                cmp = compare_systems(them, mine, rate=rate)
+                rows.append({"system": arm.run, "against": arms[other].run, "role": role, "seed": arm.seed,
+                             "split": split, "list_size": n, "metric": rate,
+                             "steps": summary["history"]["steps"], "against_steps": their_summary["history"]["steps"],
+                             "value": cmp["rate_b"], "against_value": cmp["rate_a"], "delta": cmp["delta"],
+                             "low": cmp["low"], "high": cmp["high"], "p_improvement": cmp["p_improvement"],
+                             "verdict": verdict(cmp)})
+    return rows
+
+
+def seed_rows(rows: list[dict]) -> list[dict]:
+    """Mean and spread (sample standard deviation) over training seeds, per run, split and N."""
+    groups: dict[tuple, list[dict]] = {}
+    for r in rows:
+        groups.setdefault((r["run"], r["split"], r["list_size"]), []).append(r)
+    out = []
+    for (run, split, n), rs in groups.items():
+        if len(rs) < 2:
+            continue
+        row = {"run": run, "split": split, "list_size": n, "seeds": len(rs)}
+        for k in ("wer", "uwer", "bwer", "recall"):
+            vals = [r[k] for r in rs if r[k] is not None]
+            row[f"{k}_mean"] = statistics.fmean(vals) if vals else None
+            row[f"{k}_sd"] = statistics.stdev(vals) if len(vals) > 1 else None
+        out.append(row)
+    return out
+
+
+def _fmt(v) -> str:
+    if v is None:
+        return "-"
+    return f"{v:.3f}" if isinstance(v, float) else str(v)
+
+
+def markdown_table(rows: list[dict]) -> str:
+    if not rows:
+        return "(no results)"
+    keys = list(rows[0])
+    lines = ["| " + " | ".join(keys) + " |", "|" + "---|" * len(keys)]
+    lines += ["| " + " | ".join(_fmt(r[k]) for k in keys) + " |" for r in rows]
+    return "\n".join(lines)
+
+
+def _csv(rows: list[dict]) -> str:
+    buf = io.StringIO()
+    if rows:
+        w = csv.DictWriter(buf, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    return buf.getvalue()
+
+
+def write_tables(folder: Path, arms: dict, results: dict) -> dict:
+    rows = result_rows(arms, results)
+    comparisons = comparison_rows(arms, results)
+    seeds = seed_rows(rows)
+    parts = [("results", rows), ("comparisons", comparisons)] + ([("seeds", seeds)] if seeds else [])
+    for name, table in parts:
+        write_atomic(folder / f"{name}.csv", _csv(table))
+        write_atomic(folder / f"{name}.json", json.dumps(table, indent=1) + "\n")
+    short = [{k: c[k] for k in ("system", "against", "role", "seed", "split", "list_size", "metric", "steps",
+                                "against_steps", "value", "against_value", "low", "high", "verdict")}
+             for c in comparisons]
+    md = ("## Results (steps and training seconds: totals behind each evaluated model)\n\n"
+          + markdown_table(rows)
+          + "\n\n## Differences against the control arm and the starting run (95 % paired-bootstrap interval)\n\n"
+          + markdown_table(short)
+          + (("\n\n## Spread over training seeds\n\n" + markdown_table(seeds)) if seeds else "") + "\n")
+    write_atomic(folder / "results.md", md)
+    return {"rows": rows, "comparisons": comparisons, "seeds": seeds, "markdown": md}
