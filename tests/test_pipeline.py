@@ -140,3 +140,42 @@ def test_same_seed_and_steps_give_the_same_weights_and_a_history_through_init_fr
     h = read_history(d.last_checkpoint)
     assert h["steps"] == 10 and [r["steps"] for r in h["runs"]] == [6, 4]
     assert h["seconds"] == pytest.approx(a.history["seconds"] + d.train_seconds, abs=0.05)
+
+
+def test_experiment_resume_keeps_finished_arms_and_evaluations(corpus, tmp_path):
+    recipe = tmp_path / "r.yaml"
+    recipe.write_text(f"""
+name: again
+out_dir: {tmp_path / 'runs'}
+shared:
+  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 4, minutes: 0, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
+runs:
+  baseline: {{}}
+evaluate: {{splits: [test_unseen], list_sizes: [0]}}
+""")
+    first = run_recipe(recipe, quiet=True)
+    ckpt = tmp_path / "runs" / "again" / "baseline" / "checkpoints" / "last.ckpt"
+    scores = tmp_path / "runs" / "again" / "baseline" / "results" / "test_unseen.n0.scores.json"
+    stamps = ckpt.stat().st_mtime_ns, scores.stat().st_mtime_ns
+    again = run_recipe(recipe, quiet=True, resume=True)
+    assert again == first and (ckpt.stat().st_mtime_ns, scores.stat().st_mtime_ns) == stamps
+
+
+def test_a_failed_start_leaves_no_run_folder_and_a_mistyped_corpus_is_an_error(corpus, tmp_path):
+    from tinyrnnt.config import ConfigError
+    from tinyrnnt.data import CorpusError
+    from tinyrnnt.experiment import load_experiment
+    from tinyrnnt.lab.recipes import ensure_corpus
+    from tinyrnnt.lab.train import train
+
+    cfg = load_experiment(None, [f"data.corpus={corpus}", f"run_dir={tmp_path / 'bad'}", *SMALL_RUN,
+                                 "train.steps=2", "train.trainer={no_such_setting: 1}"])
+    with pytest.raises(ConfigError, match="no_such_setting"):
+        train(cfg, quiet=True)
+    assert not (tmp_path / "bad").exists()
+    typo = load_experiment(None, [f"data.corpus={tmp_path / 'corpsu'}"])
+    with pytest.raises(CorpusError, match="no corpus here"):
+        ensure_corpus(typo, quiet=True)
+    assert not (tmp_path / "corpsu").exists()

@@ -5,7 +5,8 @@
     tinyrnnt train   [--recipe R] [--resume] [key=value ...]      train one model
     tinyrnnt decode  CHECKPOINT [--split S] [--list-size N] ...   decode a split, write hypotheses + scores
     tinyrnnt score   HYPS.jsonl [--corpus DIR --split S]          score a hypothesis file
-    tinyrnnt experiment [RECIPE] [key=value ...]                  corpus if needed, train, evaluate, table
+    tinyrnnt experiment [RECIPE] [--resume] [key=value ...]       corpus if needed, train, evaluate, tables
+    tinyrnnt bench   NAME [options]                               a benchmark (python -m tinyrnnt.bench)
 """
 
 from __future__ import annotations
@@ -102,12 +103,15 @@ def _score(args) -> int:
 def _experiment(args) -> int:
     from tinyrnnt.lab.recipes import run_recipe
 
-    run_recipe(args.recipe, args.settings, quiet=args.quiet)
+    run_recipe(args.recipe, args.settings, quiet=args.quiet, resume=args.resume)
     return 0
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from tinyrnnt import __version__
+
     p = argparse.ArgumentParser(prog="tinyrnnt", description="A laptop lab for contextual biasing of RNN-T models.")
+    p.add_argument("--version", action="version", version=f"tinyrnnt {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
 
     c = sub.add_parser("corpus", help="build a synthetic corpus and print its card")
@@ -146,13 +150,31 @@ def build_parser() -> argparse.ArgumentParser:
     e = sub.add_parser("experiment", help="run a recipe end to end: corpus, training, evaluation, table")
     e.add_argument("recipe", nargs="?", default=None, help="recipe YAML (default: recipes/trie_vs_baseline.yaml)")
     e.add_argument("--quiet", action="store_true")
+    e.add_argument("--resume", action="store_true",
+                   help="keep finished arms and evaluations of an interrupted run; continue unfinished arms")
     e.add_argument("settings", nargs="*", help="section.key=value overrides for every model of the recipe")
     e.set_defaults(fn=_experiment)
+
+    sub.add_parser("bench", help="run a benchmark, as python -m tinyrnnt.bench NAME (see tinyrnnt bench --help)")
     return p
 
 
 def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if argv[:1] == ["bench"]:  # the benchmarks keep their own options, help included
+        from tinyrnnt.bench import main as bench_main
+
+        return bench_main(argv[1:])
     args = build_parser().parse_args(argv)
+    try:
+        return _run(args)
+    except KeyboardInterrupt:
+        print("interrupted; finished runs and results are kept (continue an experiment with --resume)",
+              file=sys.stderr)
+        return 130
+
+
+def _run(args) -> int:
     from tinyrnnt.data import CorpusError
     from tinyrnnt.synth.corpus import CorpusExistsError
     from tinyrnnt.synth.lexicon import LexiconError

@@ -16,8 +16,9 @@ One class per idea, registered by name, chosen by `bias.kind` in a recipe:
 
 `features` returns {"joiner": (B, U+1, Dj)} and/or {"predictor": (B, U+1, E)}
 for training, and optionally {"logits": (B, U+1, V)}: a per-token feature that
-`token_scores(hidden, feature)` turns into scores added straight to the joiner's
-token logits (hidden is the joiner's tanh layer, (..., Dj)); `decoder(lists)` returns an object that keeps a per-hypothesis
+`token_scores(hidden, feature, logits)` turns into scores added straight to the
+joiner's token logits (hidden is the joiner's tanh layer, (..., Dj); logits the
+plain token logits, (..., V)); `decoder(lists)` returns an object that keeps a per-hypothesis
 state while decoding (see `Biaser`) so decoding sees the features training saw.
 """
 
@@ -28,6 +29,7 @@ from dataclasses import dataclass, field
 from torch import Tensor, nn
 
 INJECTION_POINTS = ("joiner", "predictor", "both")
+BOOST_MODES = ("add", "mix")
 REGISTRY: dict[str, type["BiasingInput"]] = {}
 
 
@@ -39,6 +41,11 @@ class ListSampling:
     empty_list: float = 0.1  # chance an utterance gets no list at all (teaches trust in the sound)
     size: tuple[int, int] = (5, 100)  # list size drawn uniformly in this range (before true words)
     confusable: float = 0.1  # chance a kept word brings its other spellings along as distractors
+    # Chance a few-shot word of a training utterance is respelled (a doubled consonant, a silent
+    # letter, another vowel letter; only letter pairs training text already has) in transcript and
+    # list alike: its spelling can only come from the list, so the model learns to follow the list
+    # against its own spelling habits (bias.sampler.garble).
+    respell_few_shot: float = 0.0
 
 
 @dataclass
@@ -51,6 +58,10 @@ class BiasConfig:
     # A learned gate on the joiner's hidden layer adds the cue straight to the token logits
     # (0 at init): makes "follow the tree" one scalar per grid point to learn, not a V x V map.
     token_boost: bool = False
+    # How the token boost acts: "add" puts gate x cue on the logits; "mix" mixes the model's choice
+    # among non-blank tokens with a uniform choice among the tokens the tree allows (gate = weight),
+    # blank untouched, so following the tree does not depend on how unlikely the model finds a letter.
+    boost_mode: str = "add"
     word_start: str = "first_tokens"  # cue at word starts: first tokens of all listed words, or "none"
     valid_list_size: int = 100  # list size of the valid split's lists during training
     sampling: ListSampling = field(default_factory=ListSampling)
@@ -78,6 +89,8 @@ def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int) -> "BiasingI
         raise ValueError(f"unknown biasing input {cfg.kind!r}; registered: {['none'] + sorted(REGISTRY)}")
     if cfg.inject not in INJECTION_POINTS:
         raise ValueError(f"bias.inject must be one of {INJECTION_POINTS}, got {cfg.inject!r}")
+    if cfg.boost_mode not in BOOST_MODES:
+        raise ValueError(f"bias.boost_mode must be one of {BOOST_MODES}, got {cfg.boost_mode!r}")
     return REGISTRY[cfg.kind](cfg, joiner_dim, embed_dim)
 
 
@@ -95,8 +108,9 @@ class BiasingInput(nn.Module):
     def decoder(self, lists: list[list[str]]) -> "Biaser":
         raise NotImplementedError
 
-    def token_scores(self, hidden: Tensor, feature: Tensor) -> Tensor:
-        """Scores (..., V) added to the joiner logits, for modules whose features hold "logits"."""
+    def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor) -> Tensor:
+        """Scores (..., V) added to the joiner's plain `logits` (..., V), for modules whose features
+        hold "logits"; `hidden` is the joiner's tanh layer (..., Dj)."""
         raise NotImplementedError
 
 

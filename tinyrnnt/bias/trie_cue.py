@@ -23,6 +23,7 @@ from tinyrnnt.bias.trie import BatchedTrees, PrefixTree, training_cue
 from tinyrnnt.text import VOCAB_SIZE
 
 CACHE_NODES = 500_000
+MIX_GATE_START = -3.0  # the mixing gate starts at sigmoid(-3) = 0.05: the model begins near its plain self
 
 
 @register("trie")
@@ -36,6 +37,14 @@ class TrieCue(BiasingInput):
         if self.to_logits is not None:
             nn.init.zeros_(self.to_logits.weight)
             nn.init.zeros_(self.to_logits.bias)
+            if cfg.boost_mode == "mix":
+                nn.init.constant_(self.to_logits.bias, MIX_GATE_START)
+                # scales the whole correction; 0 gives exactly the plain logits
+                self.to_mix_scale = nn.Parameter(torch.ones(()))
+        # subtle: cue dropout draws from its own generator (seeded from the training seed, which
+        # seed_everything set before the model was built), so the biased arm consumes the global
+        # stream exactly as its control does: same dropout masks, same feature masks.
+        self._dropout_rng = torch.Generator().manual_seed(torch.initial_seed())
         self._trees: dict[tuple[str, ...], PrefixTree] = {}
         self._cached_nodes = 0
 
@@ -63,19 +72,47 @@ class TrieCue(BiasingInput):
             out["logits"] = cue  # (..., V)
         return out
 
-    def token_scores(self, hidden: Tensor, cue: Tensor) -> Tensor:
-        return self.to_logits(hidden) * cue  # (..., 1) * (..., V)
+    def token_scores(self, hidden: Tensor, cue: Tensor, logits: Tensor) -> Tensor:
+        if self.cfg.boost_mode == "add":
+            return self.to_logits(hidden) * cue  # (..., 1) * (..., V)
+        return self.to_mix_scale * mix_correction(logits, cue, self.to_logits(hidden)[..., 0])
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         trees = BatchedTrees([self.tree(words) for words in lists])
         cue = training_cue(targets, target_lens, trees, self.cfg.word_start)  # (B, U+1, V)
         if self.training and self.cfg.cue_dropout > 0:
-            keep = torch.rand(cue.shape[0], 1, 1, device=cue.device) >= self.cfg.cue_dropout
+            keep = (torch.rand(cue.shape[0], 1, 1, generator=self._dropout_rng) >= self.cfg.cue_dropout).to(cue.device)
             cue = cue * keep
         return self.encode(cue)
 
     def decoder(self, lists) -> "TrieBiaser":
         return TrieBiaser(self, BatchedTrees([self.tree(words) for words in lists]))
+
+
+def mix_correction(logits: Tensor, cue: Tensor, gate: Tensor) -> Tensor:
+    """What to add to `logits` (..., V) so that, where the tree allows some tokens, the non-blank
+    distribution becomes (1 - w) q + w t: q the model's own choice among non-blank tokens, t uniform
+    over the tokens the cue (..., V) allows, w = sigmoid(gate (...)). Blank's probability and the
+    normaliser stay as they were; where the cue is all zero the correction is 0.
+
+    subtle: p'(v) = p(v) ((1 - w) + w t(v) / q(v)) for v != blank, which sums to 1 - p(blank), so the
+    correction is log((1 - w) + w t / q), computed in log space (t = 0 gives log(1 - w)).
+
+    >>> logits = torch.tensor([0.0, 2.0, 0.0, -9.0])          # blank, then three tokens
+    >>> cue = torch.tensor([0.0, 0.0, 0.0, 1.0])              # the tree allows only the last
+    >>> p = torch.softmax(logits + mix_correction(logits, cue, torch.tensor(0.0)), -1)
+    >>> [round(x, 3) for x in p.tolist()]  # blank kept; half the rest goes to the allowed token
+    [0.107, 0.393, 0.053, 0.447]
+    """
+    lp = torch.log_softmax(logits, dim=-1)  # (..., V)
+    tokens = lp[..., 1:]  # (..., V-1), blank is token 0
+    log_q = tokens - torch.logsumexp(tokens, dim=-1, keepdim=True)  # (..., V-1)
+    count = cue[..., 1:].sum(-1, keepdim=True)  # (..., 1)
+    log_t = torch.where(cue[..., 1:] > 0, -torch.log(count.clamp(min=1)), torch.full_like(log_q, float("-inf")))
+    g = gate[..., None]  # (..., 1)
+    corr = torch.logaddexp(nn.functional.logsigmoid(-g), nn.functional.logsigmoid(g) + log_t - log_q)
+    corr = torch.where(count > 0, corr, torch.zeros_like(corr))  # (..., V-1)
+    return torch.cat([torch.zeros_like(corr[..., :1]), corr], dim=-1)  # (..., V)
 
 
 class TrieBiaser(Biaser):

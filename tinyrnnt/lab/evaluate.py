@@ -80,8 +80,27 @@ def exposure_recall(records: list[dict], cls: str | None = None) -> dict:
     return {f"rare_recall:{e}": hit[e] / total[e] for e in sorted(total)}
 
 
+RECORD_KEYS = ("id", "ref", "hyp", "list_size", "spans", "counts")
+
+
 def save_results(out_dir: str | Path, name: str, records: list[dict], summary: dict) -> None:
+    """NAME.hyps.jsonl (one utterance a line: id, ref, hyp, list size, rare-word spans, error counts)
+    and NAME.scores.json (the totals); the hypotheses first, so scores never stand without them."""
     out_dir = Path(out_dir)
     write_atomic(out_dir / f"{name}.hyps.jsonl",
-                 "".join(json.dumps({k: r[k] for k in ("id", "ref", "hyp", "list_size")}) + "\n" for r in records))
+                 "".join(json.dumps({k: r[k] for k in RECORD_KEYS}) + "\n" for r in records))
     write_atomic(out_dir / f"{name}.scores.json", json.dumps(summary, indent=1) + "\n")
+
+
+def load_results(out_dir: str | Path, name: str) -> tuple[list[dict], dict] | None:
+    """What save_results wrote, or None when either file is missing or unreadable."""
+    out_dir = Path(out_dir)
+    try:
+        summary = json.loads((out_dir / f"{name}.scores.json").read_text(encoding="utf-8"))
+        lines = (out_dir / f"{name}.hyps.jsonl").read_text(encoding="utf-8").splitlines()
+        records = [json.loads(line) for line in lines if line.strip()]
+    except (OSError, json.JSONDecodeError):
+        return None
+    if len(records) != summary.get("n_utts") or not all(set(RECORD_KEYS) <= set(r) for r in records):
+        return None
+    return records, summary

@@ -188,25 +188,49 @@ def _ordered(plans: dict) -> list:
     return [(run, plans[run]) for run in done]
 
 
-def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False) -> None:
+def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False, build: bool = False) -> None:
+    """Build the corpus when it is missing, but only at the default path or when `build` is asked:
+    a mistyped `data.corpus` is an error, not a new corpus built where nobody looks."""
+    from tinyrnnt.data import CorpusError, DataConfig
     from tinyrnnt.synth.card import format_card
     from tinyrnnt.synth.corpus import build_corpus
 
     if not (Path(cfg.data.corpus) / "card.json").is_file():
+        if not build and Path(cfg.data.corpus) != Path(DataConfig().corpus):
+            raise CorpusError(f"{cfg.data.corpus}: no corpus here (no card.json); check data.corpus, or build "
+                              f"one with `tinyrnnt corpus --out {cfg.data.corpus}`")
         card = build_corpus(cfg.corpus, cfg.data.corpus, quiet=quiet)
         if not quiet:
             print(format_card(card), file=sys.stderr)
 
 
-def _train_one(cfg: ExperimentConfig, quiet: bool) -> dict:
+def _train_one(cfg: ExperimentConfig, quiet: bool, resume: bool = False) -> dict:
+    """Train one arm; a finished arm leaves `trained.json` (its config and result) in its run folder.
+
+    With resume, an arm whose trained.json matches its config is not trained again, and an arm
+    interrupted after a checkpoint continues from its last.ckpt.
+    """
+    import json
+
+    from tinyrnnt.lab.evaluate import write_atomic
     from tinyrnnt.lab.train import train
 
-    r = train(cfg, quiet=quiet)
-    return {"best_checkpoint": str(r.best_checkpoint), "last_checkpoint": str(r.last_checkpoint),
-            "train_seconds": r.train_seconds, "steps": r.steps, "history": r.history}
+    marker = Path(cfg.run_dir) / "trained.json"
+    if resume and marker.is_file():
+        done = json.loads(marker.read_text(encoding="utf-8"))
+        if done["config"] == C.to_dict(cfg):
+            if not quiet:
+                print(f"{cfg.run_dir}: already trained, kept", file=sys.stderr)
+            return done["result"]
+    again = resume and (Path(cfg.run_dir) / "checkpoints" / "last.ckpt").is_file()
+    r = train(cfg, quiet=quiet, resume=again)
+    result = {"best_checkpoint": str(r.best_checkpoint), "last_checkpoint": str(r.last_checkpoint),
+              "train_seconds": r.train_seconds, "steps": r.steps, "history": r.history}
+    write_atomic(marker, json.dumps({"config": C.to_dict(cfg), "result": result}, indent=1) + "\n")
+    return result
 
 
-def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool) -> dict[str, dict]:
+def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool, resume: bool = False) -> dict[str, dict]:
     """Train every arm, each once its source has finished; with parallel > 1, that many at once.
 
     On 2 cores two one-thread runs side by side finish sooner than the same runs
@@ -222,7 +246,7 @@ def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool) -> dict[str, di
     done: dict[str, dict] = {}
     if parallel <= 1 or len(arms) == 1:
         for key, arm in arms.items():
-            done[key] = _train_one(ready_config(arm, done), quiet)
+            done[key] = _train_one(ready_config(arm, done), quiet, resume)
         return done
     import multiprocessing as mp
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -234,22 +258,24 @@ def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool) -> dict[str, di
             for key in [k for k, a in pending.items() if a.source is None or a.source in done]:
                 if len(running) >= parallel:
                     break
-                running[pool.submit(_train_one, ready_config(pending.pop(key), done), True)] = key
+                running[pool.submit(_train_one, ready_config(pending.pop(key), done), True, resume)] = key
             finished, _ = wait(running, return_when=FIRST_COMPLETED)
             for f in finished:
                 done[running.pop(f)] = f.result()
     return {key: done[key] for key in arms}
 
 
-def run_recipe(path=None, overrides=(), quiet: bool = False) -> list[dict]:
+def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False) -> list[dict]:
+    """Corpus if needed, train every arm, evaluate, write the tables. With resume, finished arms
+    and finished evaluations (same config, same checkpoint) are kept, not recomputed."""
     from tinyrnnt.lab.tables import evaluate_arms, write_tables
 
     recipe = read_recipe(path)
     arms = expand_arms(recipe, overrides)
     for arm in arms.values():
         ensure_corpus(arm.cfg, quiet)
-    trained = train_arms(arms, recipe.parallel, quiet)
-    results = evaluate_arms(arms, trained, recipe.evaluate, quiet)
+    trained = train_arms(arms, recipe.parallel, quiet, resume)
+    results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
     print(tables["markdown"])
     return tables["rows"]

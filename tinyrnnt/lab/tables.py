@@ -25,24 +25,35 @@ TABLE_KEYS = ("wer", "cer", "uwer", "uwer_subdel", "uwer_ins_near_biased", "bwer
 COMPARED = ("wer", "uwer", "bwer")
 
 
-def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = False) -> dict:
-    """{(arm key, split, list size): (records, summary)}; summaries carry the checkpoint's history."""
+def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = False, resume: bool = False) -> dict:
+    """{(arm key, split, list size): (records, summary)}; summaries carry the checkpoint's history.
+
+    With resume, an evaluation already on disk for the same checkpoint and limit is read back.
+    """
     from tinyrnnt.data import CorpusSplit
-    from tinyrnnt.lab.evaluate import evaluate, save_results
+    from tinyrnnt.lab.evaluate import evaluate, load_results, save_results
     from tinyrnnt.lab.train import load_model, read_history
 
     results = {}
     for key, arm in arms.items():
         ckpt = trained[key][f"{plan.checkpoint}_checkpoint"]
-        model, _, _ = load_model(ckpt)
+        model = None
         history = read_history(ckpt)
         for split_name in plan.splits:
             split = CorpusSplit(arm.cfg.data.corpus, split_name)
             for n in plan.list_sizes:
+                folder, name = Path(arm.cfg.run_dir) / "results", f"{split_name}.n{n}"
+                kept = load_results(folder, name) if resume else None
+                if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
+                        and kept[1].get("history") == history:
+                    results[(key, split_name, n)] = kept
+                    continue
+                if model is None:
+                    model, _, _ = load_model(ckpt)
                 records, summary = evaluate(model, split, list_size=n, max_symbols=arm.cfg.decode.max_symbols,
                                             limit=plan.limit or None)
-                summary["history"] = history
-                save_results(Path(arm.cfg.run_dir) / "results", f"{split_name}.n{n}", records, summary)
+                summary.update(history=history, checkpoint=ckpt, limit=plan.limit)
+                save_results(folder, name, records, summary)
                 results[(key, split_name, n)] = (records, summary)
                 if not quiet:
                     print(f"evaluated {key} on {split_name} at N={n}: WER {summary['wer']:.3f}", file=sys.stderr)

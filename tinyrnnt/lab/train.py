@@ -32,6 +32,9 @@ class TrainResult:
 
 
 def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> TrainResult:
+    """Train one model. Everything that can be checked is checked before anything is written:
+    the budget, the corpus, the model against `init_from` or the checkpoint to resume, the Trainer
+    settings. A run that fails before its first checkpoint leaves no run folder behind."""
     import lightning as L
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
     from lightning.pytorch.loggers import CSVLogger
@@ -43,18 +46,6 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     L.seed_everything(cfg.train.seed, verbose=False)
     run = Path(cfg.run_dir)
     ckpt_dir = run / "checkpoints"
-    if not resume and any(ckpt_dir.glob("*.ckpt")):
-        # A fresh run in a used run folder: keep the earlier checkpoints one generation back
-        # rather than let them sit beside the new ones under the same names.
-        previous = run / "checkpoints.previous"
-        if previous.exists():
-            shutil.rmtree(previous)
-        ckpt_dir.rename(previous)
-        if not quiet:
-            print(f"{run}: earlier checkpoints moved to {previous}")
-    ckpt_dir.mkdir(parents=True, exist_ok=True)
-    C.save(cfg, run / "config.yaml")
-    C.save(cfg, ckpt_dir / "config.yaml")  # the final config beside every checkpoint
 
     train_split = CorpusSplit(cfg.data.corpus, "train")
     valid_split = CorpusSplit(cfg.data.corpus, "valid", limit=cfg.data.valid_subset or None)
@@ -62,7 +53,8 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     if cfg.bias.kind != "none":
         from tinyrnnt.bias.sampler import TrainingLists
 
-        wrap_train = TrainingLists(train_split.inventory(), cfg.bias.sampling, cfg.train.seed)
+        texts = [it["text"] for it in train_split.items] if cfg.bias.sampling.respell_few_shot > 0 else ()
+        wrap_train = TrainingLists(train_split.inventory(), cfg.bias.sampling, cfg.train.seed, texts)
 
         def wrap_valid(item):
             item["list"] = valid_split.biasing_list(item["index"], cfg.bias.valid_list_size)
@@ -74,10 +66,24 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     task = TransducerTask(C.to_dict(cfg))
     if cfg.train.init_from:
         weights, _ = read_checkpoint(cfg.train.init_from)
-        missing, unexpected = task.load_state_dict(weights, strict=False)
+        try:
+            missing, unexpected = task.load_state_dict(weights, strict=False)
+        except RuntimeError as err:
+            raise CheckpointError(f"{cfg.train.init_from}: its weights do not fit this model "
+                                  f"({str(err).splitlines()[1].strip() if len(str(err).splitlines()) > 1 else err}); "
+                                  "init_from needs a checkpoint of the same model sizes") from None
         if unexpected:
             raise CheckpointError(f"{cfg.train.init_from}: holds weights this model lacks: {unexpected[:5]}")
         task.prior = read_history(cfg.train.init_from)
+    resume_from = ckpt_dir / "last.ckpt" if resume and (ckpt_dir / "last.ckpt").exists() else None
+    if resume_from is not None:
+        weights, _ = read_checkpoint(resume_from)
+        try:
+            TransducerTask(C.to_dict(cfg)).load_state_dict(weights)
+        except RuntimeError:
+            raise CheckpointError(f"{resume_from}: the settings given do not fit the checkpoint to resume "
+                                  f"(model or biasing sizes differ); resume with the run's own settings "
+                                  f"({run / 'config.yaml'}) or train into a new run_dir") from None
     clock = TrainingClock(cfg.train.minutes, cfg.train.snapshot_minutes)
     best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True,
                            enable_version_counter=False)
@@ -91,16 +97,39 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
                         enable_model_summary=not quiet, num_sanity_val_steps=0, accelerator="cpu",
                         log_every_n_steps=20)
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
-    trainer = L.Trainer(**trainer_args)
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=".*does not have many workers.*")
-        warnings.filterwarnings("ignore", message=".*val_check_interval.*")
-        warnings.filterwarnings("ignore", message=".*exists and is not empty.*")  # our config.yaml sits there
-        warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
-        trainer.fit(task, train_dl, valid_dl, ckpt_path="last" if resume and (ckpt_dir / "last.ckpt").exists() else None)
-    # subtle: Lightning writes last.ckpt at validations; the budget usually ends between two, so the
-    # final weights (the ones equal-step comparisons evaluate) are saved here.
-    trainer.save_checkpoint(ckpt_dir / "last.ckpt")
+    try:
+        trainer = L.Trainer(**trainer_args)
+    except TypeError as err:
+        raise C.ConfigError(f"train.trainer: {err} (these settings go to lightning.Trainer unchanged)") from None
+
+    # Checks passed: only now touch the run folder.
+    new_folder = not run.exists()
+    if not resume and any(ckpt_dir.glob("*.ckpt")):
+        # A fresh run in a used run folder: keep the earlier checkpoints one generation back
+        # rather than let them sit beside the new ones under the same names.
+        previous = run / "checkpoints.previous"
+        if previous.exists():
+            shutil.rmtree(previous)
+        ckpt_dir.rename(previous)
+        if not quiet:
+            print(f"{run}: earlier checkpoints moved to {previous}")
+    ckpt_dir.mkdir(parents=True, exist_ok=True)
+    C.save(cfg, run / "config.yaml")
+    C.save(cfg, ckpt_dir / "config.yaml")  # the final config beside every checkpoint
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+            warnings.filterwarnings("ignore", message=".*val_check_interval.*")
+            warnings.filterwarnings("ignore", message=".*exists and is not empty.*")  # our config.yaml sits there
+            warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
+            trainer.fit(task, train_dl, valid_dl, ckpt_path=resume_from)
+        # subtle: Lightning writes last.ckpt at validations; the budget usually ends between two, so the
+        # final weights (the ones equal-step comparisons evaluate) are saved here.
+        trainer.save_checkpoint(ckpt_dir / "last.ckpt", weights_only=False)  # with optimiser state, for --resume
+    except BaseException:
+        if new_folder and not any(ckpt_dir.glob("*.ckpt")):
+            shutil.rmtree(run, ignore_errors=True)  # nothing worth keeping: leave no half-made run folder
+        raise
     return TrainResult(run, Path(best.best_model_path or ckpt_dir / "last.ckpt"), ckpt_dir / "last.ckpt",
                        task.train_seconds, trainer.global_step, task.history(trainer.global_step),
                        clock.snapshots, clock)

@@ -47,7 +47,7 @@ def run_train_bench(args) -> dict:
     losses = time_losses()
     _log(f"sgemm {sgemm:.1f} GFLOP/s (2 threads); loss ms ours {losses['loss_ms_ours']:.1f}, "
          f"torchaudio {losses['loss_ms_torchaudio']:.1f}")
-    ensure_corpus(cfg)
+    ensure_corpus(cfg, build=True)
     facts_path = run_dir / "bench.json"
     if args.fresh or not facts_path.is_file():
         t0 = time.perf_counter()

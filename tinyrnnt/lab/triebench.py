@@ -87,7 +87,7 @@ def run_trie_bench(args) -> dict:
     overrides = [f"data.corpus={args.corpus}"] + ([f"train.minutes={args.minutes}"] if args.minutes else [])
     arms = expand_arms(recipe, overrides)
     t_start = time.perf_counter()
-    ensure_corpus(next(iter(arms.values())).cfg)
+    ensure_corpus(next(iter(arms.values())).cfg, build=True)
     corpus_s = json.loads((Path(args.corpus) / "build.json").read_text())["build_seconds"]
     facts_path = Path(args.run_dir) / "trained.json"
     wanted = {key: C.to_dict(arm.cfg) for key, arm in arms.items()}

@@ -239,7 +239,7 @@ class Transducer(nn.Module):
         """Joiner hidden layer (..., Dj) -> logits (..., V), plus the biasing input's token scores
         when it gives a "logits" feature; training and decoding both come through here."""
         logits = self.joiner.out(hidden)
-        return logits if token_feature is None else logits + self.bias.token_scores(hidden, token_feature)
+        return logits if token_feature is None else logits + self.bias.token_scores(hidden, token_feature, logits)
 
     def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
         """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""

@@ -203,6 +203,11 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
     out_dir = Path(out_dir)
     if out_dir.exists() and not overwrite:
         raise CorpusExistsError(f"{out_dir} already exists; pass overwrite to replace it")
+    if out_dir.exists() and not out_dir.is_dir():
+        raise CorpusExistsError(f"{out_dir} is a file, not a corpus folder; refusing to replace it")
+    if out_dir.exists() and not (out_dir / "card.json").is_file() and any(out_dir.iterdir()):
+        raise CorpusExistsError(f"{out_dir} holds files but no corpus card (card.json): it is not a corpus, "
+                                "so it is not replaced; pick another folder or empty it first")
     t0 = time.perf_counter()
     scn, inventory, splits = make_text(cfg)
     _progress(f"text: {sum(len(v) for v in splits.values())} sentences, {len(inventory)} rare words "
