@@ -5,7 +5,7 @@
     tinyrnnt train   [--recipe R] [--resume] [key=value ...]      train one model
     tinyrnnt decode  CHECKPOINT [--split S] [--list-size N] ...   decode a split, write hypotheses + scores
     tinyrnnt score   HYPS.jsonl [--corpus DIR --split S]          score a hypothesis file
-    tinyrnnt experiment [RECIPE] [--resume] [key=value ...]       corpus if needed, train, evaluate, tables
+    tinyrnnt experiment [--recipe R] [--resume] [key=value ...]   corpus if needed, train, evaluate, tables
     tinyrnnt bench   NAME [options]                               a benchmark (python -m tinyrnnt.bench)
 """
 
@@ -20,11 +20,10 @@ from tinyrnnt.config import ConfigError
 
 
 def _corpus(args) -> int:
-    from tinyrnnt import config as C
     from tinyrnnt.synth.card import format_card
-    from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
+    from tinyrnnt.synth.corpus import build_corpus, corpus_config
 
-    cfg = C.apply_overrides(CorpusConfig(), args.settings)
+    cfg = corpus_config(args.settings, args.preset)
     card = build_corpus(cfg, args.out, overwrite=args.overwrite, quiet=args.quiet)
     print(format_card(card))
     return 0
@@ -64,12 +63,16 @@ def _decode(args) -> int:
     from tinyrnnt.lab.evaluate import evaluate, save_results
     from tinyrnnt.lab.train import load_model
 
+    from tinyrnnt.lab.evaluate import read_list_file
+
+    own_list = read_list_file(args.list_file) if args.list_file else None
     model, cfg, _ = load_model(args.checkpoint)
     split = CorpusSplit(args.corpus or cfg.data.corpus, args.split)
     records, summary = evaluate(model, split, list_size=args.list_size, confusable=args.confusable,
-                                max_symbols=cfg.decode.max_symbols)
+                                max_symbols=cfg.decode.max_symbols, fixed_list=own_list)
     out = Path(args.out or Path(args.checkpoint).parent.parent / "decode")
-    name = f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else "")
+    name = (f"{args.split}.{Path(args.list_file).stem}" if args.list_file
+            else f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else ""))
     save_results(out, name, records, summary)
     print(json.dumps({k: summary[k] for k in ("wer", "cer", "uwer", "bwer", "recall", "precision")}, indent=1))
     print(f"wrote {out / (name + '.hyps.jsonl')} and {out / (name + '.scores.json')}")
@@ -77,25 +80,36 @@ def _decode(args) -> int:
 
 
 def _score(args) -> int:
+    from tinyrnnt.data import CorpusError
     from tinyrnnt.score import score_utterance, summarize
+    from tinyrnnt.text import normalize
 
+    path = Path(args.hyps)
+    if not path.is_file():
+        raise CorpusError(f"{path}: hypothesis file not found")
     counts = []
     if args.corpus:
         from tinyrnnt.data import CorpusSplit
 
         split = CorpusSplit(args.corpus, args.split)
         by_id = {it["id"]: i for i, it in enumerate(split.items)}
-    for lineno, line in enumerate(Path(args.hyps).read_text(encoding="utf-8").splitlines(), 1):
+    for lineno, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+        if not line.strip():
+            continue  # blank lines carry nothing
         try:
             row = json.loads(line)
-            ref, hyp = row["ref"], row["hyp"]
-        except (json.JSONDecodeError, KeyError, TypeError):
-            print(f"error: {args.hyps}:{lineno}: expected a JSON object with 'ref' and 'hyp'", file=sys.stderr)
-            return 2
+            ref, hyp = normalize(row["ref"]), normalize(row["hyp"])  # both sides normalised alike
+        except (json.JSONDecodeError, KeyError, TypeError, AttributeError):
+            raise CorpusError(f"{path}:{lineno}: expected a JSON object with text fields 'ref' and 'hyp'") from None
         lst = []
         if args.corpus and row.get("list_size"):
+            if row.get("id") not in by_id:
+                raise CorpusError(f"{path}:{lineno}: utterance {row.get('id')!r} is not in split {args.split!r} "
+                                  f"of {args.corpus}; is this a hypothesis file of another split?")
             lst = split.biasing_list(by_id[row["id"]], int(row["list_size"]))
         counts.append(score_utterance(ref, hyp, lst))
+    if not counts:
+        raise CorpusError(f"{path}: no hypotheses in the file; expected one JSON object a line")
     print(json.dumps(summarize(counts), indent=1))
     return 0
 
@@ -114,45 +128,62 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"tinyrnnt {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
 
-    c = sub.add_parser("corpus", help="build a synthetic corpus and print its card")
+    c = sub.add_parser("corpus", help="build a synthetic corpus and print its card",
+                       epilog="example: tinyrnnt corpus --out corpora/small --preset small seed=3")
     c.add_argument("--out", default="corpora/default", help="corpus folder to create (default corpora/default)")
-    c.add_argument("--overwrite", action="store_true", help="replace an existing corpus folder")
-    c.add_argument("--quiet", action="store_true")
-    c.add_argument("settings", nargs="*", help="corpus settings as key=value, e.g. seed=3 train_utts=2000")
+    c.add_argument("--preset", default=None,
+                   help="a named set of settings: small = a corpus for trying things out, built in seconds")
+    c.add_argument("--overwrite", action="store_true",
+                   help="replace an existing corpus folder (only one holding a corpus card, or an empty one)")
+    c.add_argument("--quiet", action="store_true", help="no progress lines")
+    c.add_argument("settings", nargs="*",
+                   help="corpus settings as key=value or corpus.key=value, e.g. seed=3 text.few_shot_share=0.5 "
+                        "scenario=path/to/scenario.yaml")
     c.set_defaults(fn=_corpus)
 
     k = sub.add_parser("card", help="print the card of an existing corpus")
-    k.add_argument("folder")
+    k.add_argument("folder", help="a corpus folder (holding card.json)")
     k.set_defaults(fn=_card)
 
     t = sub.add_parser("train", help="train one model (recipe + key=value settings)")
-    t.add_argument("--recipe", default=None, help="recipe YAML (only its differences from the defaults)")
+    t.add_argument("--recipe", default=None,
+                   help="one experiment's recipe: a built-in name (baseline) or a YAML path (differences from the defaults)")
     t.add_argument("--resume", action="store_true", help="continue from the run folder's last checkpoint")
-    t.add_argument("--quiet", action="store_true")
-    t.add_argument("settings", nargs="*", help="section.key=value, e.g. train.minutes=5 model.encoder_dim=192")
+    t.add_argument("--quiet", action="store_true", help="no progress bar")
+    t.add_argument("settings", nargs="*",
+                   help="section.key=value, e.g. train.steps=600 model.encoder_dim=192 bias.kind=trie "
+                        "(bias.kind: none or trie; bias.inject: joiner, predictor or both; "
+                        "bias.boost_mode: add or mix); unknown keys list the valid ones")
     t.set_defaults(fn=_train)
 
     d = sub.add_parser("decode", help="decode a split with a checkpoint; write hypotheses and scores")
-    d.add_argument("checkpoint")
+    d.add_argument("checkpoint", help="a .ckpt file written by `tinyrnnt train` (e.g. runs/NAME/checkpoints/last.ckpt)")
     d.add_argument("--corpus", default=None, help="corpus folder (default: the one the model trained on)")
-    d.add_argument("--split", default="test")
+    d.add_argument("--split", default="test",
+                   help="split to decode: train, valid, test, test_unseen or test_soundalike (default test)")
     d.add_argument("--list-size", type=int, default=0, help="biasing list size N (0 = no list)")
     d.add_argument("--confusable", action="store_true", help="lists led by other spellings of the same sound")
+    d.add_argument("--list-file", default=None,
+                   help="your own biasing list, one entry a line ('#' starts a comment), used for every utterance "
+                        "instead of the corpus lists")
     d.add_argument("--out", default=None, help="folder for results (default: RUN/decode)")
     d.set_defaults(fn=_decode)
 
     s = sub.add_parser("score", help="score a hypothesis file (JSON Lines with ref and hyp)")
-    s.add_argument("hyps")
+    s.add_argument("hyps", help="JSON Lines file, one object a line with 'ref' and 'hyp' (and 'id', 'list_size')")
     s.add_argument("--corpus", default=None, help="corpus folder, to score against its biasing lists")
-    s.add_argument("--split", default="test")
+    s.add_argument("--split", default="test", help="split the hypotheses are of (default test)")
     s.set_defaults(fn=_score)
 
     e = sub.add_parser("experiment", help="run a recipe end to end: corpus, training, evaluation, table")
-    e.add_argument("recipe", nargs="?", default=None, help="recipe YAML (default: recipes/trie_vs_baseline.yaml)")
-    e.add_argument("--quiet", action="store_true")
+    e.add_argument("--recipe", default=None,
+                   help="recipe: a built-in name (trie_vs_baseline, the default; baseline) or a YAML path")
+    e.add_argument("--quiet", action="store_true", help="no progress lines")
     e.add_argument("--resume", action="store_true",
                    help="keep finished arms and evaluations of an interrupted run; continue unfinished arms")
-    e.add_argument("settings", nargs="*", help="section.key=value overrides for every model of the recipe")
+    e.add_argument("settings", nargs="*",
+                   help="section.key=value overrides: of the recipe itself (evaluate.list_sizes=[0,100], seeds=[0,1], "
+                        "parallel=1, controls=false, pairing=from_scratch) or of every run (train.steps=300)")
     e.set_defaults(fn=_experiment)
 
     sub.add_parser("bench", help="run a benchmark, as python -m tinyrnnt.bench NAME (see tinyrnnt bench --help)")
@@ -179,8 +210,9 @@ def _run(args) -> int:
     from tinyrnnt.synth.corpus import CorpusExistsError
     from tinyrnnt.synth.lexicon import LexiconError
     from tinyrnnt.synth.scenario import ScenarioError
+    from tinyrnnt.text import TokenError
 
-    known = (ConfigError, CorpusError, CorpusExistsError, LexiconError, ScenarioError)
+    known = (ConfigError, CorpusError, CorpusExistsError, LexiconError, ScenarioError, TokenError)
     try:
         return args.fn(args)
     except known as err:

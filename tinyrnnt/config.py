@@ -90,6 +90,33 @@ def _coerce(value: Any, hint: Any, where: str) -> Any:
     return value
 
 
+def require(obj, section: str, positive=(), at_least_zero=(), fraction=()) -> None:
+    """Range checks for a settings dataclass (call from __post_init__); errors name the field.
+
+    >>> from dataclasses import dataclass
+    >>> @dataclass
+    ... class Demo:
+    ...     size: int = 3
+    ...     def __post_init__(self):
+    ...         require(self, "demo", positive=("size",))
+    >>> Demo(size=-1)  # doctest: +IGNORE_EXCEPTION_DETAIL
+    Traceback (most recent call last):
+    ConfigError: demo.size must be above 0, got -1
+    """
+    for name in positive:
+        v = getattr(obj, name)
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and v <= 0:
+            raise ConfigError(f"{section}.{name} must be above 0, got {v}")
+    for name in at_least_zero:
+        v = getattr(obj, name)
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and v < 0:
+            raise ConfigError(f"{section}.{name} cannot be negative, got {v}")
+    for name in fraction:
+        v = getattr(obj, name)
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and not 0 <= v <= 1:
+            raise ConfigError(f"{section}.{name} must lie between 0 and 1, got {v}")
+
+
 def from_dict(cls, data: dict, where: str = "config"):
     """Build dataclass `cls` from a (possibly partial) mapping; missing keys keep defaults."""
     hints = _hints(cls)
@@ -123,7 +150,12 @@ def apply_overrides(cfg, overrides: list[str]):
         if "=" not in item:
             raise ConfigError(f"override {item!r} must look like section.key=value")
         key, raw = item.split("=", 1)
-        cfg = _set(cfg, key.strip().split("."), yaml.safe_load(raw) if raw.strip() else "", "")
+        try:
+            value = yaml.safe_load(raw) if raw.strip() else ""
+        except yaml.YAMLError as err:
+            raise ConfigError(f"override {item!r}: the value is not valid YAML ({str(err).splitlines()[0]}); "
+                              "quote it for the shell, e.g. 'train.trainer={accelerator: gpu, devices: 1}'") from None
+        cfg = _set(cfg, key.strip().split("."), value, "")
     return cfg
 
 

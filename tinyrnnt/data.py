@@ -34,6 +34,12 @@ class DataConfig:
     valid_subset: int = 200  # valid utterances decoded during training (0 = all)
     eval_batch_size: int = 64
 
+    def __post_init__(self):
+        from tinyrnnt.config import require
+
+        require(self, "data", positive=("batch_size", "bucket_batches", "eval_batch_size"),
+                at_least_zero=("valid_subset",))
+
 
 class CorpusSplit(torch.utils.data.Dataset):
     """One split of a corpus folder: manifest, memory-mapped frames, biasing lists."""

@@ -15,8 +15,14 @@ from tinyrnnt.synth.corpus import CorpusConfig
 @dataclass
 class DecodeConfig:
     max_symbols: int = 4  # tokens per encoder frame at most (guard against never emitting blank)
-    split: str = "test"
-    batch_size: int = 64
+    batch_size: int = 64  # utterances decoded together
+
+    def __post_init__(self):
+        C.require(self, "decode", positive=("max_symbols", "batch_size"))
+
+
+# Settings that older checkpoints carry but nothing reads any more: dropped when read back.
+RETIRED = {"decode": ("split",)}
 
 
 @dataclass
@@ -32,8 +38,24 @@ class ExperimentConfig:
 
 
 def experiment_from_dict(d: dict) -> ExperimentConfig:
+    d = {k: ({kk: vv for kk, vv in v.items() if kk not in RETIRED[k]} if k in RETIRED and isinstance(v, dict) else v)
+         for k, v in d.items()}
     return C.from_dict(ExperimentConfig, d, "config")
 
 
 def load_experiment(recipe=None, overrides=()) -> ExperimentConfig:
+    """Defaults <- one experiment's recipe (a built-in name or a YAML path) <- `section.key=value` overrides."""
+    if recipe is not None:
+        import yaml
+
+        from tinyrnnt.resources import resolve_recipe
+
+        recipe = resolve_recipe(recipe)
+        try:
+            data = yaml.safe_load(recipe.read_text(encoding="utf-8")) if recipe.is_file() else None
+        except yaml.YAMLError:
+            data = None  # C.load reports the YAML error with its line
+        if isinstance(data, dict) and "runs" in data:
+            raise C.ConfigError(f"{recipe}: a recipe of several runs ({', '.join(map(str, data['runs']))}); "
+                                "run it with `tinyrnnt experiment`, or give `train` a one-experiment recipe")
     return C.load(ExperimentConfig, recipe, overrides)

@@ -24,9 +24,12 @@ state while decoding (see `Biaser`) so decoding sees the features training saw.
 
 from __future__ import annotations
 
+import sys
 from dataclasses import dataclass, field
 
 from torch import Tensor, nn
+
+from tinyrnnt.config import ConfigError
 
 INJECTION_POINTS = ("joiner", "predictor", "both")
 BOOST_MODES = ("add", "mix")
@@ -47,6 +50,14 @@ class ListSampling:
     # against its own spelling habits (bias.sampler.garble).
     respell_few_shot: float = 0.0
 
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "bias.sampling", fraction=("keep_true", "empty_list", "confusable", "respell_few_shot"))
+        lo, hi = self.size
+        if not 0 <= lo <= hi:
+            raise ConfigError(f"bias.sampling.size must be [low, high] with 0 <= low <= high, got {list(self.size)}")
+
 
 @dataclass
 class BiasConfig:
@@ -66,6 +77,16 @@ class BiasConfig:
     valid_list_size: int = 100  # list size of the valid split's lists during training
     sampling: ListSampling = field(default_factory=ListSampling)
 
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "bias", positive=("cue_dim", "valid_list_size"), fraction=("cue_dropout",))
+        for name, value, choices in (("inject", self.inject, INJECTION_POINTS),
+                                     ("boost_mode", self.boost_mode, BOOST_MODES),
+                                     ("word_start", self.word_start, ("first_tokens", "none"))):
+            if value not in choices:
+                raise ConfigError(f"bias.{name} must be one of {list(choices)}, got {value!r}")
+
 
 def register(name: str):
     def wrap(cls):
@@ -84,9 +105,15 @@ def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int) -> "BiasingI
     if cfg.kind == "none":
         return None
     if cfg.module:
-        importlib.import_module(cfg.module)
+        # subtle: this runs Python code named in a recipe; say so before doing it
+        print(f"bias.module: importing {cfg.module!r} (runs its code) to register biasing input {cfg.kind!r}",
+              file=sys.stderr)
+        try:
+            importlib.import_module(cfg.module)
+        except ImportError as err:
+            raise ConfigError(f"bias.module {cfg.module!r} cannot be imported: {err}") from None
     if cfg.kind not in REGISTRY:
-        raise ValueError(f"unknown biasing input {cfg.kind!r}; registered: {['none'] + sorted(REGISTRY)}")
+        raise ConfigError(f"bias.kind: unknown biasing input {cfg.kind!r}; registered: {['none'] + sorted(REGISTRY)}")
     if cfg.inject not in INJECTION_POINTS:
         raise ValueError(f"bias.inject must be one of {INJECTION_POINTS}, got {cfg.inject!r}")
     if cfg.boost_mode not in BOOST_MODES:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import torch
 
-from tinyrnnt.data import CorpusSplit, loader
+from tinyrnnt.data import CorpusError, CorpusSplit, loader
 from tinyrnnt.decode.greedy import greedy_decode
 from tinyrnnt.score import score_utterance, summarize
 from tinyrnnt.text import decode
@@ -23,13 +23,38 @@ def write_atomic(path: str | Path, text: str) -> None:
     tmp.replace(path)
 
 
+def read_list_file(path: str | Path) -> list[str]:
+    """A user's biasing list: one entry a line, '#' starts a comment; errors name the file and line."""
+    from tinyrnnt.text import check_text, normalize
+
+    path = Path(path)
+    if not path.is_file():
+        raise CorpusError(f"{path}: biasing list file not found")
+    entries = []
+    for lineno, raw in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+        entry = normalize(raw.split("#", 1)[0])
+        if entry:
+            check_text(entry, f"{path}:{lineno}")
+            entries.append(entry)
+    if not entries:
+        raise CorpusError(f"{path}: the biasing list is empty; expected one entry a line")
+    return list(dict.fromkeys(entries))
+
+
 def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = False,
-             batch_size: int = 64, max_symbols: int = 4, limit: int | None = None) -> tuple[list[dict], dict]:
-    """Per-utterance records and the corpus summary (score.summarize keys, plus timing)."""
+             batch_size: int = 64, max_symbols: int = 4, limit: int | None = None,
+             fixed_list: list[str] | None = None) -> tuple[list[dict], dict]:
+    """Per-utterance records and the corpus summary (score.summarize keys, plus timing).
+
+    fixed_list: one biasing list for every utterance (a user's own) instead of the corpus lists.
+    """
     model.eval()
 
     def attach(item):
-        item["list"] = split.biasing_list(item["index"], list_size, confusable) if list_size else []
+        if fixed_list is not None:
+            item["list"] = fixed_list
+        else:
+            item["list"] = split.biasing_list(item["index"], list_size, confusable) if list_size else []
         return item
 
     labels = split.word_labels()  # every inventory word -> its class (and name style)

@@ -1,7 +1,7 @@
 """Recipes end to end: build the corpus if missing, train every arm, evaluate, write the tables.
 
 A recipe YAML is either the differences of one experiment from the defaults
-(`recipes/baseline.yaml`), or several runs that share settings:
+(`tinyrnnt/recipes/baseline.yaml`), or several runs that share settings:
 
     shared: {...}            # differences every run gets
     runs:                    # run name -> its own differences
@@ -32,9 +32,9 @@ import yaml
 
 from tinyrnnt import config as C
 from tinyrnnt.experiment import ExperimentConfig
-from tinyrnnt.resources import RECIPE_DIR
+from tinyrnnt.resources import resolve_recipe
 
-DEFAULT_RECIPE = "trie_vs_baseline.yaml"  # what `tinyrnnt experiment` runs with no recipe named
+DEFAULT_RECIPE = "trie_vs_baseline"  # what `tinyrnnt experiment` runs with no recipe named
 PAIRINGS = ("fine_tune", "from_scratch")
 CHECKPOINT_CHOICES = ("last", "best")
 
@@ -76,9 +76,7 @@ class Arm:
 
 
 def read_recipe(path: str | Path | None) -> Recipe:
-    if path is None:
-        path = RECIPE_DIR / DEFAULT_RECIPE
-    path = Path(path)
+    path = resolve_recipe(path if path is not None else DEFAULT_RECIPE)
     if not path.is_file():
         raise C.ConfigError(f"{path}: recipe file not found")
     try:
@@ -265,15 +263,47 @@ def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool, resume: bool = 
     return {key: done[key] for key in arms}
 
 
+RECIPE_LEVEL = ("name", "out_dir", "evaluate", "parallel", "seeds", "controls", "pairing")
+
+
+def split_overrides(recipe: Recipe, overrides) -> tuple[Recipe, list[str]]:
+    """`key=value` overrides of the recipe itself (evaluate.*, seeds, parallel, controls, pairing,
+    name, out_dir) applied to it; the rest returned, for every run's experiment config."""
+    own = [o for o in overrides if o.split("=", 1)[0].split(".")[0].strip() in RECIPE_LEVEL]
+    recipe = C.apply_overrides(recipe, own)
+    if recipe.pairing not in PAIRINGS or recipe.evaluate.checkpoint not in CHECKPOINT_CHOICES:
+        raise C.ConfigError(f"pairing must be one of {PAIRINGS} and evaluate.checkpoint one of {CHECKPOINT_CHOICES}")
+    return recipe, [o for o in overrides if o not in own]
+
+
+def check_plan(plan: EvalPlan, corpus: str) -> None:
+    """Splits and list sizes of the evaluation plan exist in the corpus: checked before training."""
+    import json
+
+    card = json.loads((Path(corpus) / "card.json").read_text(encoding="utf-8"))
+    splits = sorted(card["splits"])
+    missing = [s for s in plan.splits if s not in card["splits"]]
+    if missing:
+        raise C.ConfigError(f"evaluate.splits: {missing} not in corpus {corpus}; its splits: {splits}")
+    largest = max((card["splits"][s].get("lists", {}).get("max", 0) for s in plan.splits), default=0)
+    too_big = [n for n in plan.list_sizes if n < 0 or n > largest]
+    if too_big:
+        raise C.ConfigError(f"evaluate.list_sizes: {too_big} outside 0..{largest}, the list sizes corpus "
+                            f"{corpus} offers")
+    if plan.limit < 0:
+        raise C.ConfigError(f"evaluate.limit must be 0 (all) or a positive count, got {plan.limit}")
+
+
 def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False) -> list[dict]:
     """Corpus if needed, train every arm, evaluate, write the tables. With resume, finished arms
     and finished evaluations (same config, same checkpoint) are kept, not recomputed."""
     from tinyrnnt.lab.tables import evaluate_arms, write_tables
 
-    recipe = read_recipe(path)
+    recipe, overrides = split_overrides(read_recipe(path), list(overrides))
     arms = expand_arms(recipe, overrides)
     for arm in arms.values():
         ensure_corpus(arm.cfg, quiet)
+        check_plan(recipe.evaluate, arm.cfg.data.corpus)
     trained = train_arms(arms, recipe.parallel, quiet, resume)
     results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import shutil
 import warnings
 from dataclasses import dataclass
@@ -13,6 +14,16 @@ from tinyrnnt import config as C
 from tinyrnnt.data import CorpusSplit, loader
 from tinyrnnt.experiment import ExperimentConfig, experiment_from_dict
 from tinyrnnt.model.transducer import Transducer
+
+
+class _NoAdverts(logging.Filter):
+    """Drops Lightning's start-up tips about third-party services (printed at every training start)."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return "Tip:" not in record.getMessage()
+
+
+logging.getLogger("lightning.pytorch.utilities.rank_zero").addFilter(_NoAdverts())
 
 
 class CheckpointError(ValueError):

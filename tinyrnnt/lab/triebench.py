@@ -1,6 +1,6 @@
 """The `trie` benchmark: trie-based deep biasing against its equal-steps control arm and the baseline.
 
-The recipe (recipes/trie_vs_baseline.yaml) trains a baseline for a step budget,
+The recipe (tinyrnnt/recipes/trie_vs_baseline.yaml) trains a baseline for a step budget,
 then the trie arm and its control from the baseline's last checkpoint for the
 same steps, schedule and data order. Gains are stated against the control; the
 baseline stays as a second reference. Also measured: the held-out name style,
@@ -16,9 +16,7 @@ import time
 from pathlib import Path
 
 from tinyrnnt.lab.evaluate import evaluate, save_results, write_atomic
-from tinyrnnt.resources import RECIPE_DIR
-
-RECIPE = RECIPE_DIR / "trie_vs_baseline.yaml"
+RECIPE = "trie_vs_baseline"  # the built-in recipe
 HELDOUT = "style:reed"  # label of the held-out name style in the default corpus
 
 

@@ -38,6 +38,18 @@ class TrainConfig:
     # in a recipe, "run:NAME" means the best checkpoint of the earlier run NAME
     trainer: dict = field(default_factory=dict)  # passed to lightning.Trainer unchanged
 
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "train", positive=("learning_rate", "decay_half_life_steps", "min_learning_rate", "threads",
+                                         "validate_every_steps", "max_epochs"),
+                at_least_zero=("warmup_steps", "grad_clip", "time_masks", "time_mask_frames", "freq_masks",
+                               "freq_mask_bins", "steps", "minutes", "early_stop_patience", "snapshot_minutes",
+                               "bias_lr_scale"))
+        if self.loss_implementation not in ("ours", "torchaudio"):
+            raise ConfigError(f"train.loss_implementation must be 'ours' or 'torchaudio', "
+                              f"got {self.loss_implementation!r}")
+
 
 def spec_mask(feats, feat_lens, cfg: TrainConfig, generator=None):
     """Time and frequency masking (SpecAugment-style, Park et al. 2019), in place on a copy."""

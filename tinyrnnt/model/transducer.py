@@ -39,6 +39,16 @@ class ModelConfig:
     # it only shapes training, decoding never uses the head.
     ctc_weight: float = 0.3
 
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "model", positive=("feature_bins", "stack_frames", "stack_after_first", "encoder_dim",
+                                         "predictor_dim", "predictor_embed", "joiner_dim"),
+                at_least_zero=("ctc_weight",), fraction=("dropout",))
+        if self.encoder_layers < 2:
+            raise ConfigError(f"model.encoder_layers must be at least 2 (a first layer, then the rest), "
+                              f"got {self.encoder_layers}")
+
     @property
     def time_reduction(self) -> int:
         return self.stack_frames * self.stack_after_first

@@ -41,6 +41,7 @@ from pathlib import Path
 
 import numpy as np
 
+from tinyrnnt.config import ConfigError
 from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, make_speakers
 from tinyrnnt.synth.scenario import load_scenario
 from tinyrnnt.synth.sentences import SEEN, RareWord, Sentence, SentenceMaker, TextConfig, build_inventory
@@ -55,7 +56,7 @@ CHUNK = 256  # utterances per rendering task; fixed so output does not depend on
 
 @dataclass
 class CorpusConfig:
-    scenario: str = "ferry_network"  # name in synth_data/ or a path to a scenario YAML
+    scenario: str = "ferry_network"  # a built-in scenario name or a path to a scenario YAML
     seed: int = 0
     train_utts: int = 14000
     valid_utts: int = 400
@@ -72,6 +73,38 @@ class CorpusConfig:
     workers: int = 2
     text: TextConfig = field(default_factory=TextConfig)
     acoustics: AcousticConfig = field(default_factory=AcousticConfig)
+
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "corpus", positive=("train_utts", "valid_utts", "train_speakers", "heldout_speakers",
+                                          "max_list_size", "workers", "feature_step"),
+                at_least_zero=("test_utts", "test_unseen_utts", "test_soundalike_utts"))
+        bad = [n for n in self.list_sizes if not 0 <= n <= self.max_list_size]
+        if bad:
+            raise ConfigError(f"corpus.list_sizes {bad} must lie in 0..max_list_size ({self.max_list_size})")
+
+
+# Named sets of corpus settings (`tinyrnnt corpus --preset NAME`), written as overrides.
+PRESETS: dict[str, list[str]] = {
+    # a corpus to try things out with: built in seconds, too small for figures worth quoting
+    "small": ["train_utts=1500", "valid_utts=100", "test_utts=200", "test_unseen_utts=200",
+              "test_soundalike_utts=60", "train_speakers=40", "heldout_speakers=10", "max_list_size=1000",
+              "list_sizes=[0, 10, 100, 1000]", "text.n_invented_names=1500", "text.n_compounds=400",
+              "text.few_shot_share=0.2", "text.extra_styles={fell: 200, reed: 150}"],
+}
+
+
+def corpus_config(settings=(), preset: str | None = None) -> CorpusConfig:
+    """Corpus settings from a preset and `key=value` overrides; `corpus.key=value` (the section form
+    `train` and `experiment` take) means the same."""
+    from tinyrnnt import config as C
+
+    if preset is not None and preset not in PRESETS:
+        raise ConfigError(f"unknown corpus preset {preset!r}; presets: {sorted(PRESETS)}")
+    items = (PRESETS[preset] if preset else []) + [s[len("corpus."):] if s.startswith("corpus.") else s
+                                                   for s in settings]
+    return C.apply_overrides(CorpusConfig(), items)
 
 
 class CorpusExistsError(FileExistsError):
@@ -133,7 +166,7 @@ def soundalike_sentences(maker: SentenceMaker, sounds, inventory: list[RareWord]
     plain = [i for i, t in enumerate(maker.scn.templates)
              if not any(kind == "slot" and val in maker.scn.entity_slots for kind, val in t.pieces)]
     if not plain:
-        raise ValueError(f"scenario {maker.scn.name}: test_soundalike_utts = {n} needs templates without "
+        raise ConfigError(f"scenario {maker.scn.name}: test_soundalike_utts = {n} needs templates without "
                          "rare-word slots; set corpus test_soundalike_utts=0 or add such templates")
     known = {rw.word: rw for rw in inventory}
     group = max((rw.group for rw in inventory), default=-1) + 1
@@ -152,7 +185,7 @@ def soundalike_sentences(maker: SentenceMaker, sounds, inventory: list[RareWord]
             out.append(s)
             if len(out) == n:
                 return out
-    raise ValueError(f"only {len(out)} of {n} sentences without rare words have sound-alike entries; "
+    raise ConfigError(f"only {len(out)} of {n} sentences without rare words have sound-alike entries; "
                      "lower test_soundalike_utts")
 
 
@@ -161,7 +194,7 @@ def check_training_text(train: list[Sentence], inventory: list[RareWord]) -> Non
     never = {rw.word: rw.exposure for rw in inventory if rw.exposure not in SEEN}
     leaks = sorted({w for s in train for w in s.words if w in never})
     if leaks:
-        raise ValueError(f"training text holds {len(leaks)} words it must never hear, e.g. "
+        raise ConfigError(f"training text holds {len(leaks)} words it must never hear, e.g. "
                          + ", ".join(f"{w!r} ({never[w]})" for w in leaks[:5])
                          + "; a scenario word may coincide with a generated rare word")
 
@@ -178,7 +211,7 @@ def _lists(sentences: list[Sentence], inventory: list[RareWord], index: dict[str
         groups.setdefault(rw.group, []).append(i)
     n_inv = len(inventory)
     if max_size > n_inv - 8:
-        raise ValueError(f"max_list_size {max_size} needs an inventory larger than {n_inv} words")
+        raise ConfigError(f"max_list_size {max_size} needs an inventory larger than {n_inv} words")
     out = np.empty((len(sentences), max_size), dtype=np.uint16)
     for u, s in enumerate(sentences):
         own = {index[sp["word"]] for sp in s.spans}
@@ -210,6 +243,9 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
                                 "so it is not replaced; pick another folder or empty it first")
     t0 = time.perf_counter()
     scn, inventory, splits = make_text(cfg)
+    if cfg.max_list_size > len(inventory) - 8:  # checked before anything is rendered
+        raise ConfigError(f"max_list_size {cfg.max_list_size} needs an inventory larger than its "
+                         f"{len(inventory)} rare words; lower max_list_size or raise text.n_invented_names")
     _progress(f"text: {sum(len(v) for v in splits.values())} sentences, {len(inventory)} rare words "
               f"({time.perf_counter() - t0:.1f} s)", quiet)
     seeds = np.random.SeedSequence(cfg.seed).spawn(9)

@@ -1,6 +1,6 @@
 """Scenario specs: templates, slots, phrases and word lists, read and checked.
 
-A scenario is a YAML file (the default lives in `synth_data/`). It may point to
+A scenario is a YAML file (the built-in ones live in `tinyrnnt/scenarios/`). It may point to
 the user's own files, resolved beside the YAML:
 
 - `templates_file`: one template per line;
@@ -64,7 +64,7 @@ class Scenario:
 
 
 def resolve(name_or_path: str | Path) -> Path:
-    """A scenario name in synth_data/ ("ferry_network") or a path to a YAML file."""
+    """A built-in scenario name ("ferry_network") or a path to a YAML file."""
     p = Path(name_or_path)
     if p.suffix in (".yaml", ".yml") or p.exists():
         if not p.is_file():

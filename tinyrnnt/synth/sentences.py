@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from tinyrnnt.config import ConfigError
 from tinyrnnt.synth.lexicon import common_words, compounds, invented_names
 from tinyrnnt.synth.scenario import FILLER_SLOT, Scenario
 
@@ -51,6 +52,17 @@ class TextConfig:
     extra_styles: dict = field(default_factory=lambda: {"fell": 1200, "reed": 500})
     # Styles held out of training text and training lists: all their names are unseen test names.
     heldout_styles: tuple[str, ...] = ("reed",)
+
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "text", at_least_zero=("n_invented_names", "n_compounds", "frequent_groups"),
+                fraction=("few_shot_share", "unseen_valid_share", "unseen_test_share", "test_few_shot_share"))
+        if self.few_shot_share + self.unseen_valid_share + self.unseen_test_share > 1:
+            raise ConfigError("text.few_shot_share + unseen_valid_share + unseen_test_share must not exceed 1")
+        lo, hi = self.few_shot_count
+        if not 1 <= lo <= hi:
+            raise ConfigError(f"text.few_shot_count must be [low, high] with 1 <= low <= high, got {list(self.few_shot_count)}")
 
 
 @dataclass(frozen=True)
@@ -89,7 +101,7 @@ def build_inventory(scn: Scenario, cfg: TextConfig, rng: np.random.Generator) ->
         style(name)  # unknown style names fail here, listing the known ones
     unknown = sorted(set(cfg.heldout_styles) - set(cfg.extra_styles) - {"plain"})
     if unknown:
-        raise ValueError(f"text.heldout_styles {unknown} are not among the corpus's styles "
+        raise ConfigError(f"text.heldout_styles {unknown} are not among the corpus's styles "
                          f"(plain and text.extra_styles {sorted(cfg.extra_styles)})")
     # (class, style) -> groups of (phones, [(word, slot), ...])
     by_kind: dict[tuple[str, str], list[tuple[tuple[str, ...], list[tuple[str, str]]]]] = defaultdict(list)
@@ -104,7 +116,7 @@ def build_inventory(scn: Scenario, cfg: TextConfig, rng: np.random.Generator) ->
         taken: set[tuple[str, ...]] = set()
         for name, count in {"plain": cfg.n_invented_names, **cfg.extra_styles}.items():
             if not isinstance(count, int) or count < 0:
-                raise ValueError(f"text.extra_styles.{name}: expected a whole number of spellings >= 0, got {count!r}")
+                raise ConfigError(f"text.extra_styles.{name}: expected a whole number of spellings >= 0, got {count!r}")
             if count == 0:
                 continue
             slot_of = _proportional_slots(name_slots, scn)
@@ -226,7 +238,7 @@ class SentenceMaker:
                 bag = [rw for rw in self.pools[(slot, "few_shot")]
                        for _ in range(int(rng.integers(few_shot_counts[0], few_shot_counts[1] + 1)))]
                 if len(bag) > len(places) // 2:
-                    raise ValueError(f"slot {{{slot}}}: {len(bag)} few-shot uses need more sentences "
+                    raise ConfigError(f"slot {{{slot}}}: {len(bag)} few-shot uses need more sentences "
                                      f"than {len(places)} open slots allow; raise train_utts or lower text.few_shot_share")
                 for k, p in zip(rng.choice(len(places), size=len(bag), replace=False), bag):
                     chosen[places[int(k)]] = p
@@ -247,7 +259,7 @@ class SentenceMaker:
                     allowed = [e for e in exposures[i] if self.pools[(val, e)]
                                and (e != "few_shot" or few_shot_counts is None)]
                     if not allowed:
-                        raise ValueError(f"slot {{{val}}} has no words of exposure {exposures[i]}")
+                        raise ConfigError(f"slot {{{val}}} has no words of exposure {exposures[i]}")
                     p = np.array([weights.get(e, 0.0) if weights else 1.0 for e in allowed])
                     e = allowed[int(rng.choice(len(allowed), p=p / p.sum()))] if len(allowed) > 1 else allowed[0]
                     pool = self.pools[(val, e)]

@@ -87,5 +87,7 @@ STYLES: dict[str, NameStyle] = {s.name: s for s in (PLAIN, FELL, REED)}
 
 def style(name: str) -> NameStyle:
     if name not in STYLES:
-        raise ValueError(f"unknown name style {name!r}; styles: {sorted(STYLES)}")
+        from tinyrnnt.config import ConfigError
+
+        raise ConfigError(f"unknown name style {name!r}; styles: {sorted(STYLES)}")
     return STYLES[name]

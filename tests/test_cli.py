@@ -1,0 +1,113 @@
+"""The command line on bad input: one clear sentence naming the file, line or field; exit code 2;
+no traceback, and nothing written."""
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+from tinyrnnt.cli import main
+from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
+from tinyrnnt.synth.sentences import TextConfig
+
+TINY = dict(train_utts=160, valid_utts=16, test_utts=16, test_unseen_utts=16, test_soundalike_utts=8,
+            max_list_size=200, list_sizes=(0, 10), train_speakers=4, heldout_speakers=2, workers=1,
+            text=TextConfig(n_invented_names=500, n_compounds=150, few_shot_share=0.004,
+                            extra_styles={"fell": 40, "reed": 30}))
+SMALL = ["model.encoder_dim=32", "model.predictor_dim=32", "model.predictor_embed=16", "model.joiner_dim=24",
+         "model.encoder_layers=2", "train.steps=2", "train.minutes=0", "train.threads=1", "data.batch_size=16",
+         "data.valid_subset=16"]
+
+
+@pytest.fixture(scope="module")
+def corpus(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("cli") / "corpus"
+    build_corpus(CorpusConfig(seed=2, **TINY), folder, quiet=True)
+    return folder
+
+
+def _fails(capsys, argv, *needles):
+    code = main(argv)
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert err.startswith("error: ") and "Traceback" not in err
+    for needle in needles:
+        assert needle in err, err
+    return err
+
+
+def test_bad_settings_are_named_before_anything_is_written(corpus, tmp_path, capsys):
+    run = tmp_path / "run"
+    base = ["train", f"data.corpus={corpus}", f"run_dir={run}", *SMALL]
+    _fails(capsys, base + ["model.encoder_dim=-3"], "model.encoder_dim")
+    _fails(capsys, base + ["bias.kind=magic"], "bias.kind", "trie")
+    _fails(capsys, base + ["bias.kind=trie", "bias.inject=nowhere"], "bias.inject", "joiner")
+    _fails(capsys, base + ["train.loss_implementation=fast"], "train.loss_implementation")
+    _fails(capsys, base + ["train.trainer={no_such_setting: 1}"], "train.trainer")
+    _fails(capsys, base + ["train.trainer={accelerator: gpu"], "not valid YAML", "quote")
+    _fails(capsys, base + ["model.colour=red"], "unknown key", "valid keys")
+    _fails(capsys, base + ["steps"], "section.key=value")
+    assert not run.exists()
+
+
+def test_recipes_corpora_and_files_that_do_not_fit(corpus, tmp_path, capsys):
+    bad_yaml = tmp_path / "bad.yaml"
+    bad_yaml.write_text("runs: {baseline: {}\n")
+    _fails(capsys, ["experiment", "--recipe", str(bad_yaml)], "bad.yaml", "not valid YAML")
+    _fails(capsys, ["train", "--recipe", "trie_vs_baseline"], "several runs", "tinyrnnt experiment")
+    _fails(capsys, ["experiment", "--recipe", "nonesuch"], "unknown recipe", "trie_vs_baseline")
+    _fails(capsys, ["experiment", f"data.corpus={corpus}", "evaluate.list_sizes=[0, 99999]"], "list_sizes", "99999")
+    _fails(capsys, ["train", f"data.corpus={tmp_path / 'corpsu'}", *SMALL], "no corpus here")
+    assert not (tmp_path / "corpsu").exists()
+    _fails(capsys, ["card", str(tmp_path)], "card.json")
+    _fails(capsys, ["corpus", "--out", str(tmp_path / "c"), "--preset", "huge"], "preset", "small")
+    _fails(capsys, ["corpus", "--out", str(tmp_path / "c"), "text.few_shot_share=2"], "text.few_shot_share")
+    assert not (tmp_path / "c").exists()
+
+
+def test_scoring_files_that_do_not_fit(corpus, tmp_path, capsys):
+    _fails(capsys, ["score", str(tmp_path / "missing.jsonl")], "not found")
+    empty = tmp_path / "empty.jsonl"
+    empty.write_text("\n\n")
+    _fails(capsys, ["score", str(empty)], "no hypotheses")
+    broken = tmp_path / "broken.jsonl"
+    broken.write_text(json.dumps({"ref": "a b", "hyp": "a b"}) + "\n\n{not json\n")
+    _fails(capsys, ["score", str(broken)], "broken.jsonl:3")
+    other = tmp_path / "other.jsonl"
+    other.write_text(json.dumps({"id": "valid-000003", "ref": "a", "hyp": "a", "list_size": 10}) + "\n")
+    _fails(capsys, ["score", str(other), "--corpus", str(corpus), "--split", "test"], "another split")
+    ok = tmp_path / "ok.jsonl"
+    ok.write_text(json.dumps({"ref": "Call  Maren", "hyp": "call maren"}) + "\n\n")  # case, spaces, blank line
+    assert main(["score", str(ok)]) == 0
+    assert json.loads(capsys.readouterr().out)["wer"] == 0.0
+
+
+def test_version_module_entry_and_bench_help():
+    out = subprocess.run([sys.executable, "-m", "tinyrnnt", "--version"], capture_output=True, text=True)
+    assert out.returncode == 0 and out.stdout.startswith("tinyrnnt ")
+    out = subprocess.run([sys.executable, "-m", "tinyrnnt", "bench", "--help"], capture_output=True, text=True)
+    assert out.returncode == 0 and "corpus" in out.stdout and "trie" in out.stdout
+
+
+def test_a_regular_install_finds_the_builtin_scenario_and_recipes(tmp_path):
+    """Build a wheel, unpack it away from the checkout, and read the built-in recipe and scenario."""
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    built = subprocess.run([sys.executable, "-m", "pip", "wheel", str(root), "-w", str(tmp_path / "wheel"),
+                            "--no-deps", "--no-build-isolation", "-q"], capture_output=True, text=True)
+    if built.returncode != 0:
+        pytest.skip(f"could not build a wheel here: {built.stderr.strip()[-200:]}")
+    wheel = next((tmp_path / "wheel").glob("tinyrnnt-*.whl"))
+    site = tmp_path / "site"
+    subprocess.run([sys.executable, "-m", "pip", "install", "--no-deps", "-q", "--target", str(site), str(wheel)],
+                   check=True, capture_output=True)
+    probe = ("import tinyrnnt, sys; from tinyrnnt.lab.recipes import read_recipe; "
+             "from tinyrnnt.synth.scenario import load_scenario; "
+             "assert str(tinyrnnt.__file__).startswith(sys.argv[1]), tinyrnnt.__file__; "
+             "print(sorted(read_recipe(None).runs), load_scenario('ferry_network').name)")
+    out = subprocess.run([sys.executable, "-c", probe, str(site)], cwd=tmp_path, capture_output=True, text=True,
+                         env={"PYTHONPATH": str(site), "PATH": "/usr/bin:/bin"})
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["['baseline',", "'trie']", "ferry_network"]
