@@ -214,3 +214,12 @@ def test_overwrite_replaces_only_a_corpus_folder(tmp_path):
     with pytest.raises(CorpusExistsError, match="not a corpus"):
         build_corpus(CorpusConfig(seed=1, **TINY), folder, overwrite=True, quiet=True)
     assert (folder / "notes.txt").read_text() == "a user's own file"
+
+
+def test_the_small_preset_and_the_section_form_of_settings():
+    from tinyrnnt.synth.corpus import corpus_config
+
+    cfg = corpus_config(["corpus.seed=4", "test_utts=50"], preset="small")
+    assert (cfg.seed, cfg.test_utts, cfg.train_utts) == (4, 50, 1500)
+    _, inventory, splits = make_text(cfg)  # its sizes fit: text for every split, lists possible
+    assert len(splits["train"]) == 1500 and len(inventory) > cfg.max_list_size

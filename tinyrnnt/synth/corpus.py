@@ -80,9 +80,13 @@ class CorpusConfig:
         require(self, "corpus", positive=("train_utts", "valid_utts", "train_speakers", "heldout_speakers",
                                           "max_list_size", "workers", "feature_step"),
                 at_least_zero=("test_utts", "test_unseen_utts", "test_soundalike_utts"))
+
+    def check(self) -> None:
+        """Checks across fields, once all settings are in (overrides come one at a time)."""
         bad = [n for n in self.list_sizes if not 0 <= n <= self.max_list_size]
         if bad:
             raise ConfigError(f"corpus.list_sizes {bad} must lie in 0..max_list_size ({self.max_list_size})")
+        self.text.check()
 
 
 # Named sets of corpus settings (`tinyrnnt corpus --preset NAME`), written as overrides.
@@ -130,6 +134,8 @@ def _progress(msg: str, quiet: bool) -> None:
 def make_text(cfg: CorpusConfig):
     """Scenario, inventory and the sentences of every split (deterministic in cfg.seed)."""
     from tinyrnnt.synth.soundalike import SoundAlikes
+
+    cfg.check()
 
     scn = load_scenario(cfg.scenario)
     seeds = np.random.SeedSequence(cfg.seed).spawn(9)

@@ -58,11 +58,14 @@ class TextConfig:
 
         require(self, "text", at_least_zero=("n_invented_names", "n_compounds", "frequent_groups"),
                 fraction=("few_shot_share", "unseen_valid_share", "unseen_test_share", "test_few_shot_share"))
-        if self.few_shot_share + self.unseen_valid_share + self.unseen_test_share > 1:
-            raise ConfigError("text.few_shot_share + unseen_valid_share + unseen_test_share must not exceed 1")
         lo, hi = self.few_shot_count
         if not 1 <= lo <= hi:
             raise ConfigError(f"text.few_shot_count must be [low, high] with 1 <= low <= high, got {list(self.few_shot_count)}")
+
+    def check(self) -> None:
+        """Checks across fields, once all settings are in."""
+        if self.few_shot_share + self.unseen_valid_share + self.unseen_test_share > 1:
+            raise ConfigError("text.few_shot_share + unseen_valid_share + unseen_test_share must not exceed 1")
 
 
 @dataclass(frozen=True)
