@@ -32,6 +32,7 @@ def _fails(capsys, argv, *needles):
     err = capsys.readouterr().err
     assert code == 2, err
     assert err.startswith("error: ") and "Traceback" not in err
+    assert len(err.strip().splitlines()) == 1, err  # one sentence, not a dump
     for needle in needles:
         assert needle in err, err
     return err

@@ -4,6 +4,7 @@
     train    training throughput and FLOP utilisation, loss timing, greedy RTF, memory, CER curve
     trie     trie-based deep biasing vs its equal-steps control arm and the baseline: B-WER, U-WER,
              held-out name style, sound-alike false triggers, determinism, cue cost, recipe time
+    faults   the bad-input catalogue, a killed-and-resumed training, a 100,000-entry list, a wheel install
 
 Each builds what it needs (corpus, checkpoints) when missing. Rates are
 fractions, times in seconds unless the key says ms.
@@ -118,10 +119,16 @@ def bench_trie(args) -> dict:
     return run_trie_bench(args)
 
 
+def bench_faults(args) -> dict:
+    from tinyrnnt.lab.faultbench import run_fault_bench
+
+    return run_fault_bench(args)
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python -m tinyrnnt.bench", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("name", choices=["corpus", "train", "trie"])
+    p.add_argument("name", choices=["corpus", "train", "trie", "faults"])
     p.add_argument("--corpus", default="corpora/default", help="default corpus folder (built when missing)")
     p.add_argument("--rebuild", action="store_true", help="corpus: rebuild the default corpus to time it")
     p.add_argument("--minutes", type=float, default=None,
@@ -136,7 +143,7 @@ def main(argv=None) -> int:
     args.run_dir = args.run_dir or f"runs/bench-{args.name}"
     if args.name == "train" and args.minutes is None:
         args.minutes = 10.0
-    result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie}[args.name](args)
+    result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "faults": bench_faults}[args.name](args)
     result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
     print(json.dumps(result))
     return 0

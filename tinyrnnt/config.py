@@ -184,12 +184,27 @@ def load(cls, recipe: str | Path | None = None, overrides: list[str] = ()):
         try:
             data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
         except yaml.YAMLError as err:
-            raise ConfigError(f"{path}: not valid YAML: {err}") from None
+            raise ConfigError(f"{path}: not valid YAML: {yaml_problem(err)}") from None
         if not isinstance(data, dict):
             raise ConfigError(f"{path}: a recipe is a mapping of sections")
         merged = _merge(to_dict(cfg), data, str(path))
         cfg = from_dict(cls, merged, str(path))
     return apply_overrides(cfg, list(overrides))
+
+
+def yaml_problem(err) -> str:
+    """One line for a YAML error: what is wrong and where.
+
+    >>> import yaml
+    >>> try:
+    ...     yaml.safe_load("a: [1, 2")
+    ... except yaml.YAMLError as e:
+    ...     print(yaml_problem(e))
+    line 1, column 9: expected ',' or ']', but got '<stream end>'
+    """
+    mark = getattr(err, "problem_mark", None)
+    problem = getattr(err, "problem", None) or str(err).splitlines()[0]
+    return f"line {mark.line + 1}, column {mark.column + 1}: {problem}" if mark is not None else problem
 
 
 def _merge(base: dict, top: dict, where: str) -> dict:

@@ -50,7 +50,12 @@ class CorpusSplit(torch.utils.data.Dataset):
         if not card_path.is_file():
             raise CorpusError(f"{folder}: no corpus here (card.json missing); build one with `tinyrnnt corpus`")
         self.folder, self.split = folder, split
-        self.card = json.loads(card_path.read_text(encoding="utf-8"))
+        try:
+            self.card = json.loads(card_path.read_text(encoding="utf-8"))
+            self.card["features"]["offset"]
+        except (json.JSONDecodeError, UnicodeDecodeError, KeyError, TypeError):
+            raise CorpusError(f"{card_path}: the corpus card is damaged (not the JSON the corpus builder writes); "
+                              "rebuild the corpus") from None
         manifest = folder / f"{split}.jsonl"
         if not manifest.is_file():
             raise CorpusError(f"{manifest}: split {split!r} not found; splits here: "
@@ -68,7 +73,7 @@ class CorpusSplit(torch.utils.data.Dataset):
                 self.items.append(item)
                 if limit is not None and len(self.items) >= limit:
                     break
-        self.frames = np.load(folder / f"{split}.feats.npy", mmap_mode="r")
+        self.frames = _load_array(folder / f"{split}.feats.npy")
         end = self.items[-1]["offset"] + self.items[-1]["frames"] if self.items else 0
         if end > self.frames.shape[0]:
             raise CorpusError(f"{folder / (split + '.feats.npy')}: holds {self.frames.shape[0]} frames, "
@@ -123,13 +128,26 @@ class CorpusSplit(torch.utils.data.Dataset):
             path = self.folder / f"{self.split}.{kind}.npy"
             if not path.is_file():
                 raise CorpusError(f"{path}: split {self.split!r} carries no biasing lists")
-            self._lists[kind] = np.load(path, mmap_mode="r")
+            self._lists[kind] = _load_array(path)
+            if self._lists[kind].ndim != 2 or self._lists[kind].shape[0] < len(self.items):
+                raise CorpusError(f"{path}: holds lists for {self._lists[kind].shape[0] if self._lists[kind].ndim else 0} "
+                                  f"utterances, the split has {len(self.items)}; rebuild the corpus")
         rows = self._lists[kind]
         if size > rows.shape[1] + 3:
             raise CorpusError(f"list size {size} exceeds this corpus's largest lists ({rows.shape[1]})")
         own = list(dict.fromkeys(sp["word"] for sp in self.items[i]["spans"]))
         inv = self.inventory()
         return own + [inv[int(j)]["word"] for j in rows[i][: max(size - len(own), 0)]]
+
+
+def _load_array(path: Path) -> np.ndarray:
+    """A memory-mapped array file of a corpus; a missing, truncated or foreign file is a CorpusError."""
+    if not path.is_file():
+        raise CorpusError(f"{path}: missing from the corpus folder; rebuild the corpus")
+    try:
+        return np.load(path, mmap_mode="r")
+    except (ValueError, OSError, EOFError) as err:
+        raise CorpusError(f"{path}: damaged or truncated ({err}); rebuild the corpus") from None
 
 
 class LengthBuckets(torch.utils.data.Sampler):

@@ -82,7 +82,7 @@ def read_recipe(path: str | Path | None) -> Recipe:
     try:
         data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
     except yaml.YAMLError as err:
-        raise C.ConfigError(f"{path}: not valid YAML: {err}") from None
+        raise C.ConfigError(f"{path}: not valid YAML: {C.yaml_problem(err)}") from None
     if not isinstance(data, dict):
         raise C.ConfigError(f"{path}: a recipe is a mapping")
     if "runs" not in data:  # a single experiment's differences

@@ -115,6 +115,10 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
 
     # Checks passed: only now touch the run folder.
     new_folder = not run.exists()
+    try:
+        run.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise C.ConfigError(f"run_dir {run}: cannot create the run folder ({err.strerror}); pick a writable place") from None
     if not resume and any(ckpt_dir.glob("*.ckpt")):
         # A fresh run in a used run folder: keep the earlier checkpoints one generation back
         # rather than let them sit beside the new ones under the same names.

@@ -212,6 +212,8 @@ def read_lexicon_file(path: str | Path) -> dict[str, list[str]]:
     from tinyrnnt.synth.phonetics import phone_symbol
 
     path = Path(path)
+    if not path.is_file():
+        raise LexiconError(f"{path}: lexicon file not found")
     out: dict[str, list[str]] = {}
     for lineno, raw in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
         line = raw.split("#", 1)[0].strip()

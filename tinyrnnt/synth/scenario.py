@@ -161,7 +161,9 @@ def load_scenario(name_or_path: str | Path) -> Scenario:
         root = yaml.compose(text)
         spec = yaml.safe_load(text)
     except yaml.YAMLError as err:
-        raise ScenarioError(f"{path}: not valid YAML: {err}") from None
+        from tinyrnnt.config import yaml_problem
+
+        raise ScenarioError(f"{path}: not valid YAML: {yaml_problem(err)}") from None
     if not isinstance(spec, dict):
         raise ScenarioError(f"{path}: expected a mapping at the top level")
     required = ("name", "entity_slots", "phrases", "filler", "compound_parts", "rare_words")
