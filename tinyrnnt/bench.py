@@ -137,6 +137,8 @@ def main(argv=None) -> int:
     p.add_argument("--seeds", type=int, default=1,
                    help="trie: training seeds per arm (default 1; 3 reports the spread of the gain)")
     p.add_argument("--fresh", action="store_true", help="train/trie: retrain even if a benchmark run exists")
+    p.add_argument("--resume", action="store_true",
+                   help="trie: with --fresh, keep arms an interrupted run already finished (same settings)")
     p.add_argument("--run-dir", default=None, help="train/trie: where the benchmark models live "
                    "(default runs/bench-train, runs/bench-trie)")
     args = p.parse_args(argv)

