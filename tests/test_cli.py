@@ -112,3 +112,41 @@ def test_a_regular_install_finds_the_builtin_scenario_and_recipes(tmp_path):
                          env={"PYTHONPATH": str(site), "PATH": "/usr/bin:/bin"})
     assert out.returncode == 0, out.stderr
     assert out.stdout.split() == ["['baseline',", "'trie']", "ferry_network"]
+
+
+def test_ctrl_c_exits_130_and_experiment_resume_keeps_what_was_finished(corpus, tmp_path):
+    """An experiment interrupted (SIGINT) during its second run exits 130 with one line; run again with
+    --resume, it keeps the finished first run (its checkpoint untouched) and completes."""
+    import signal
+    import time
+
+    recipe = tmp_path / "r.yaml"
+    recipe.write_text(f"""
+name: interrupted
+out_dir: {tmp_path / 'runs'}
+controls: false
+shared:
+  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 4, minutes: 0, validate_every_steps: 2, threads: 1, snapshot_minutes: 0}}
+runs:
+  first: {{}}
+  second: {{train: {{steps: 400}}}}
+evaluate: {{splits: [test], list_sizes: [0]}}
+""")
+    folder = tmp_path / "runs" / "interrupted"
+    cmd = [sys.executable, "-m", "tinyrnnt", "experiment", "--quiet", "--recipe", str(recipe)]
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 120
+    while not (folder / "second" / "checkpoints" / "last.ckpt").is_file() and time.time() < deadline:
+        time.sleep(0.05)
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
+    first = folder / "first" / "checkpoints" / "last.ckpt"
+    stamp = first.stat().st_mtime_ns
+    done = subprocess.run(cmd + ["--resume", "train.steps=4"], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert first.stat().st_mtime_ns == stamp  # the finished run was kept, not trained again
+    assert (folder / "results.md").is_file()

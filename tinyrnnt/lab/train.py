@@ -17,10 +17,12 @@ from tinyrnnt.model.transducer import Transducer
 
 
 class _NoAdverts(logging.Filter):
-    """Drops Lightning's start-up tips about third-party services (printed at every training start)."""
+    """Drops Lightning's start-up tips about third-party services (printed at every training start)
+    and its Ctrl-C notice (the command prints its own one line)."""
 
     def filter(self, record: logging.LogRecord) -> bool:
-        return "Tip:" not in record.getMessage()
+        message = record.getMessage()
+        return "Tip:" not in message and "Detected KeyboardInterrupt" not in message
 
 
 logging.getLogger("lightning.pytorch.utilities.rank_zero").addFilter(_NoAdverts())
@@ -137,7 +139,13 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
             warnings.filterwarnings("ignore", message=".*val_check_interval.*")
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")  # our config.yaml sits there
             warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
-            trainer.fit(task, train_dl, valid_dl, ckpt_path=resume_from)
+            try:
+                trainer.fit(task, train_dl, valid_dl, ckpt_path=resume_from)
+            except SystemExit:
+                # subtle: Lightning turns Ctrl-C into sys.exit(1); give the caller its KeyboardInterrupt back
+                if trainer.interrupted:
+                    raise KeyboardInterrupt from None
+                raise
         # subtle: Lightning writes last.ckpt at validations; the budget usually ends between two, so the
         # final weights (the ones equal-step comparisons evaluate) are saved here.
         trainer.save_checkpoint(ckpt_dir / "last.ckpt", weights_only=False)  # with optimiser state, for --resume
