@@ -48,6 +48,11 @@ class EvalPlan:
     # checkpoint with the lowest valid CER (each arm then stops at its own step count).
     checkpoint: str = "last"
 
+    def __post_init__(self):
+        if self.checkpoint not in CHECKPOINT_CHOICES:
+            raise C.ConfigError(f"evaluate.checkpoint must be one of {CHECKPOINT_CHOICES}, got {self.checkpoint!r}")
+        C.require(self, "evaluate", at_least_zero=("limit",))
+
 
 @dataclass
 class Recipe:
@@ -60,6 +65,12 @@ class Recipe:
     seeds: tuple[int, ...] = (0,)  # training seeds (train.seed); every arm is trained once per seed
     controls: bool = True  # an equal-steps control arm (no biasing input) beside every biased run
     pairing: str = "fine_tune"  # or "from_scratch": no arm starts from another, steps summed
+
+    def __post_init__(self):
+        if self.pairing not in PAIRINGS:
+            raise C.ConfigError(f"pairing must be one of {PAIRINGS}, got {self.pairing!r}")
+        if not self.seeds or len(set(self.seeds)) != len(self.seeds):
+            raise C.ConfigError(f"seeds must be a non-empty list of distinct whole numbers, got {list(self.seeds)}")
 
 
 @dataclass
@@ -88,15 +99,11 @@ def read_recipe(path: str | Path | None) -> Recipe:
     if "runs" not in data:  # a single experiment's differences
         data = {"name": path.stem, "shared": data, "runs": {data.get("name", path.stem): {}}}
     data.setdefault("name", path.stem)
-    recipe = C.from_dict(Recipe, data, str(path))
-    if recipe.pairing not in PAIRINGS:
-        raise C.ConfigError(f"{path}: pairing must be one of {PAIRINGS}, got {recipe.pairing!r}")
-    if recipe.evaluate.checkpoint not in CHECKPOINT_CHOICES:
-        raise C.ConfigError(f"{path}: evaluate.checkpoint must be one of {CHECKPOINT_CHOICES}, "
-                            f"got {recipe.evaluate.checkpoint!r}")
-    if not recipe.seeds or len(set(recipe.seeds)) != len(recipe.seeds):
-        raise C.ConfigError(f"{path}: seeds must be a non-empty list of distinct whole numbers, got {recipe.seeds}")
-    return recipe
+    try:
+        return C.from_dict(Recipe, data, str(path))
+    except C.ConfigError as err:
+        message = str(err)
+        raise C.ConfigError(message if message.startswith(str(path)) else f"{path}: {message}") from None
 
 
 def run_config(recipe: Recipe, run: str, overrides=()) -> ExperimentConfig:
@@ -270,10 +277,7 @@ def split_overrides(recipe: Recipe, overrides) -> tuple[Recipe, list[str]]:
     """`key=value` overrides of the recipe itself (evaluate.*, seeds, parallel, controls, pairing,
     name, out_dir) applied to it; the rest returned, for every run's experiment config."""
     own = [o for o in overrides if o.split("=", 1)[0].split(".")[0].strip() in RECIPE_LEVEL]
-    recipe = C.apply_overrides(recipe, own)
-    if recipe.pairing not in PAIRINGS or recipe.evaluate.checkpoint not in CHECKPOINT_CHOICES:
-        raise C.ConfigError(f"pairing must be one of {PAIRINGS} and evaluate.checkpoint one of {CHECKPOINT_CHOICES}")
-    return recipe, [o for o in overrides if o not in own]
+    return C.apply_overrides(recipe, own), [o for o in overrides if o not in own]  # checks in __post_init__
 
 
 def check_plan(plan: EvalPlan, corpus: str) -> None:
@@ -290,8 +294,6 @@ def check_plan(plan: EvalPlan, corpus: str) -> None:
     if too_big:
         raise C.ConfigError(f"evaluate.list_sizes: {too_big} outside 0..{largest}, the list sizes corpus "
                             f"{corpus} offers")
-    if plan.limit < 0:
-        raise C.ConfigError(f"evaluate.limit must be 0 (all) or a positive count, got {plan.limit}")
 
 
 def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False) -> list[dict]:
@@ -301,9 +303,9 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
 
     recipe, overrides = split_overrides(read_recipe(path), list(overrides))
     arms = expand_arms(recipe, overrides)
-    for arm in arms.values():
-        ensure_corpus(arm.cfg, quiet)
-        check_plan(recipe.evaluate, arm.cfg.data.corpus)
+    for corpus_of in {arm.cfg.data.corpus: arm.cfg for arm in arms.values()}.values():  # each corpus once
+        ensure_corpus(corpus_of, quiet)
+        check_plan(recipe.evaluate, corpus_of.data.corpus)
     trained = train_arms(arms, recipe.parallel, quiet, resume)
     results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
