@@ -1,5 +1,6 @@
 """Biasing inputs as plug-ins: invariants for every registered module, the training-list sampler."""
 
+import numpy as np
 import pytest
 import torch
 
@@ -114,15 +115,16 @@ INVENTORY = [{"word": w, "group": g, "exposure": e} for w, g, e in [
 def test_sampler_keeps_or_drops_true_words_and_never_offers_unseen_ones():
     always = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(2, 2), confusable=0.0))
     never = TrainingLists(INVENTORY, ListSampling(keep_true=0.0, empty_list=0.0, size=(2, 2), confusable=0.0))
+    rng = np.random.default_rng(0)
     for _ in range(50):
-        a = always.sample(["maren"])
+        a = always.sample(["maren"], rng)
         assert "maren" in a and "oske" not in a and len(a) == 3
-        b = never.sample(["maren"])
+        b = never.sample(["maren"], rng)
         assert "maren" not in b and "oske" not in b
     confusing = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(0, 0), confusable=1.0))
-    assert sorted(confusing.sample(["kell"])) == ["kel", "kell"]
+    assert sorted(confusing.sample(["kell"], rng)) == ["kel", "kell"]
     empty = TrainingLists(INVENTORY, ListSampling(empty_list=1.0))
-    assert empty.sample(["kell"]) == []
+    assert empty.sample(["kell"], rng) == []
 
 
 def test_mixing_boost_keeps_blank_and_moves_mass_to_the_allowed_tokens():
@@ -155,7 +157,7 @@ def test_respelling_changes_transcript_and_list_together_and_only_few_shot_words
     texts = ["call maren and kell", "the marrhen a mareen hem", "marrenn maern"]
     sampler = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(2, 2), confusable=0.0,
                                                     respell_few_shot=1.0), seed=3, training_texts=texts)
-    item = {"text": "call maren and kell", "tokens": encode("call maren and kell"),
+    item = {"text": "call maren and kell", "tokens": encode("call maren and kell"), "index": 0, "epoch": 0,
             "spans": [{"index": 1, "word": "maren", "exposure": "few_shot"},
                       {"index": 3, "word": "kell", "exposure": "frequent"}]}
     out = sampler(dict(item))

@@ -151,15 +151,22 @@ def _load_array(path: Path) -> np.ndarray:
 
 
 class LengthBuckets(torch.utils.data.Sampler):
-    """Batches of similar length: sort within random buckets, shuffle batch order (seeded per epoch)."""
+    """Batches of similar length: sort within random buckets, shuffle batch order.
+
+    The batches of an epoch depend only on (seed, epoch), never on what was drawn before, so a
+    resumed run picks up exactly where an interrupted one stopped (`start_at`).
+    """
 
     def __init__(self, lengths: np.ndarray, batch_size: int, bucket_batches: int, shuffle: bool, seed: int = 0):
         self.lengths, self.batch_size, self.bucket = lengths, batch_size, batch_size * bucket_batches
-        self.shuffle, self.seed, self.epoch = shuffle, seed, 0
+        self.shuffle, self.seed = shuffle, seed
+        self.epoch = 0  # the epoch the next iteration yields
+        self.current_epoch = 0  # the epoch being yielded (items carry it to a transform)
+        self._skip = 0  # batches of the next iteration already trained on
 
-    def __iter__(self):
-        rng = np.random.default_rng([self.seed, self.epoch])
-        self.epoch += 1
+    def batches(self, epoch: int) -> list[list[int]]:
+        """Every batch of an epoch, in order (a function of seed and epoch alone)."""
+        rng = np.random.default_rng([self.seed, epoch])
         order = rng.permutation(len(self.lengths)) if self.shuffle else np.arange(len(self.lengths))
         batches = []
         for s in range(0, len(order), self.bucket):
@@ -168,6 +175,21 @@ class LengthBuckets(torch.utils.data.Sampler):
             batches += [chunk[k: k + self.batch_size].tolist() for k in range(0, len(chunk), self.batch_size)]
         if self.shuffle:
             batches = [batches[i] for i in rng.permutation(len(batches))]
+        return batches
+
+    def set_epoch(self, epoch: int) -> None:
+        """Make the next iteration yield epoch `epoch` from its beginning (the trainer says which
+        epoch starts; without it, each iteration is the next epoch)."""
+        self.epoch, self._skip = epoch, 0
+
+    def start_at(self, epoch: int, batches_done: int) -> None:
+        """Make the next iteration yield epoch `epoch` without its first `batches_done` batches."""
+        self.epoch, self._skip = epoch, batches_done
+
+    def __iter__(self):
+        self.current_epoch = self.epoch
+        batches = self.batches(self.epoch)[self._skip:]
+        self.epoch, self._skip = self.epoch + 1, 0
         return iter(batches)
 
     def __len__(self) -> int:
@@ -201,17 +223,23 @@ def collate(items: list[dict]) -> dict:
 
 def loader(split: CorpusSplit, batch_size: int, shuffle: bool = False, bucket_batches: int = 20,
            seed: int = 0, transform=None) -> torch.utils.data.DataLoader:
-    dataset = split if transform is None else _Mapped(split, transform)
+    """Batches of one split in the main process. A transform gets each item with its "epoch" added,
+    so whatever it draws can depend on (epoch, utterance) alone."""
     sampler = LengthBuckets(split.lengths(), batch_size, bucket_batches, shuffle, seed)
-    return torch.utils.data.DataLoader(dataset, batch_sampler=sampler, collate_fn=collate, num_workers=0)
+    dataset = split if transform is None else _Mapped(split, transform, sampler)
+    # subtle: a loader draws a base seed from the global torch generator each time it is iterated,
+    # unless it has its own generator; with its own, iterating (a new epoch, a validation, a resumed
+    # run) leaves the global stream that dropout draws from exactly as it was.
+    return torch.utils.data.DataLoader(dataset, batch_sampler=sampler, collate_fn=collate, num_workers=0,
+                                       generator=torch.Generator().manual_seed(seed))
 
 
 class _Mapped(torch.utils.data.Dataset):
-    def __init__(self, base, fn):
-        self.base, self.fn = base, fn
+    def __init__(self, base, fn, sampler: LengthBuckets):
+        self.base, self.fn, self.sampler = base, fn, sampler
 
     def __len__(self):
         return len(self.base)
 
     def __getitem__(self, i):
-        return self.fn(self.base[i])
+        return self.fn({**self.base[i], "epoch": self.sampler.current_epoch})

@@ -7,8 +7,11 @@ reference rare word is kept with `keep_true` (so the model also meets lists
 that lack the true word and learns to trust the sound), a kept word brings its
 other spellings with `confusable`, and distractors are drawn from the words
 training may know of (exposures frequent, few_shot, distractor; never the
-unseen valid/test words), list size uniform in `size`. Seeded; with the
-data loader in the main process the lists follow the batch order exactly.
+unseen valid/test words), list size uniform in `size`.
+
+Each utterance's draws come from a generator seeded by (seed, epoch, utterance index), so its
+list depends on nothing drawn before: not on batch order, prefetching, or where a resumed run
+picked up.
 """
 
 from __future__ import annotations
@@ -21,8 +24,7 @@ TRAINING_EXPOSURES = ("frequent", "few_shot", "distractor")
 class TrainingLists:
     def __init__(self, inventory: list[dict], sampling, seed: int = 0, training_texts=()):
         """training_texts: the transcripts of training, whose letter pairs respellings keep to."""
-        self.cfg = sampling
-        self.rng = np.random.default_rng([seed, 77])
+        self.cfg, self.seed = sampling, seed
         self.words = [row["word"] for row in inventory]
         self.pool = np.array([i for i, row in enumerate(inventory) if row["exposure"] in TRAINING_EXPOSURES])
         self.group_of = {row["word"]: row["group"] for row in inventory}
@@ -32,17 +34,19 @@ class TrainingLists:
             self.members.setdefault(row["group"], []).append(row["word"])
 
     def __call__(self, item: dict) -> dict:
+        """item: a training item with its "index" and the "epoch" it is drawn in."""
+        rng = np.random.default_rng([self.seed, 77, item["epoch"], item["index"]])
         if self.cfg.respell_few_shot > 0:
-            item = self.respell(item)
+            item = self.respell(item, rng)
         originals = [sp["respelled_from"] for sp in item["spans"] if "respelled_from" in sp]
-        item["list"] = self.sample([sp["word"] for sp in item["spans"]], originals)
+        item["list"] = self.sample([sp["word"] for sp in item["spans"]], rng, originals)
         return item
 
     def _spellings(self, word: str) -> list[str]:
         """Every spelling of the word's sound in the inventory (a respelled word: just itself)."""
         return self.members[self.group_of[word]] if word in self.group_of else [word]
 
-    def respell(self, item: dict) -> dict:
+    def respell(self, item: dict, rng: np.random.Generator) -> dict:
         """Respell some few-shot words of one utterance (transcript, tokens and spans alike)."""
         from tinyrnnt.text import encode
 
@@ -50,8 +54,8 @@ class TrainingLists:
         spans = []
         for sp in item["spans"]:
             new = None
-            if sp["exposure"] == "few_shot" and self.rng.random() < self.cfg.respell_few_shot:
-                new = garble(sp["word"], self.rng, self.letter_pairs)
+            if sp["exposure"] == "few_shot" and rng.random() < self.cfg.respell_few_shot:
+                new = garble(sp["word"], rng, self.letter_pairs)
             if new is None or new in self.group_of:
                 spans.append(sp)
                 continue
@@ -62,10 +66,10 @@ class TrainingLists:
         text = " ".join(words)
         return {**item, "text": text, "tokens": encode(text), "spans": spans}
 
-    def sample(self, reference_words: list[str], also_banned: list[str] = ()) -> list[str]:
+    def sample(self, reference_words: list[str], rng: np.random.Generator, also_banned: list[str] = ()) -> list[str]:
         """A training list for an utterance with these rare words; `also_banned` (the original
         spellings of respelled words) never come as distractors."""
-        c, rng = self.cfg, self.rng
+        c = self.cfg
         if rng.random() < c.empty_list:
             return []
         own = set(reference_words) | set(also_banned)

@@ -52,6 +52,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
     from lightning.pytorch.loggers import CSVLogger
 
+    from tinyrnnt.lab.resume import AtomicCheckpoints, ExactResume, remove_stale_temporaries
     from tinyrnnt.model.lightning import TrainingClock, TransducerTask
 
     check_budget(cfg)
@@ -100,7 +101,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     clock = TrainingClock(cfg.train.minutes, cfg.train.snapshot_minutes)
     best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True,
                            enable_version_counter=False)
-    callbacks = [clock, best]
+    callbacks = [clock, best, ExactResume(train_dl.batch_sampler)]
     if cfg.train.early_stop_patience:
         callbacks.append(EarlyStopping(monitor="valid_cer", mode="min", patience=cfg.train.early_stop_patience))
     trainer_args = dict(max_epochs=cfg.train.max_epochs, max_steps=cfg.train.steps or -1,
@@ -108,7 +109,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
                         check_val_every_n_epoch=None, gradient_clip_val=cfg.train.grad_clip,
                         logger=CSVLogger(run, name="logs"), callbacks=callbacks, enable_progress_bar=not quiet,
                         enable_model_summary=not quiet, num_sanity_val_steps=0, accelerator="cpu",
-                        log_every_n_steps=20)
+                        log_every_n_steps=20, plugins=[AtomicCheckpoints()])
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
     try:
         trainer = L.Trainer(**trainer_args)
@@ -131,6 +132,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
         if not quiet:
             print(f"{run}: earlier checkpoints moved to {previous}")
     ckpt_dir.mkdir(parents=True, exist_ok=True)
+    remove_stale_temporaries(ckpt_dir)
     C.save(cfg, run / "config.yaml")
     C.save(cfg, ckpt_dir / "config.yaml")  # the final config beside every checkpoint
     try:
@@ -139,6 +141,8 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
             warnings.filterwarnings("ignore", message=".*val_check_interval.*")
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")  # our config.yaml sits there
             warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
+            # ExactResume (lab/resume.py) continues a half-done epoch exactly; Lightning cannot see that
+            warnings.filterwarnings("ignore", message=".*dataloader is not resumable.*")
             try:
                 trainer.fit(task, train_dl, valid_dl, ckpt_path=resume_from)
             except SystemExit:
