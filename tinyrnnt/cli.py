@@ -12,6 +12,7 @@
 from __future__ import annotations
 
 import argparse
+import errno
 import json
 import sys
 from pathlib import Path
@@ -65,12 +66,15 @@ def _decode(args) -> int:
 
     from tinyrnnt.lab.evaluate import read_list_file
 
+    from tinyrnnt.files import MB, check_output_folder
+
     own_list = read_list_file(args.list_file) if args.list_file else None
     model, cfg, _ = load_model(args.checkpoint)
     split = CorpusSplit(args.corpus or cfg.data.corpus, args.split)
+    out = Path(args.out or Path(args.checkpoint).parent.parent / "decode")
+    check_output_folder(out, MB, "decode output folder")  # before decoding, not after
     records, summary = evaluate(model, split, list_size=args.list_size, confusable=args.confusable,
                                 max_symbols=cfg.decode.max_symbols, fixed_list=own_list)
-    out = Path(args.out or Path(args.checkpoint).parent.parent / "decode")
     name = (f"{args.split}.{Path(args.list_file).stem}" if args.list_file
             else f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else ""))
     save_results(out, name, records, summary)
@@ -205,6 +209,9 @@ def main(argv: list[str] | None = None) -> int:
         return 130
 
 
+WRITE_ERRORS = (errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES)
+
+
 def _run(args) -> int:
     from tinyrnnt.data import CorpusError
     from tinyrnnt.synth.corpus import CorpusExistsError
@@ -223,6 +230,12 @@ def _run(args) -> int:
 
         if isinstance(err, CheckpointError):
             print(f"error: {err}", file=sys.stderr)
+            return 2
+        if isinstance(err, OSError) and err.errno in WRITE_ERRORS:
+            # the disk filled up or turned read-only during the work; results, configs and
+            # checkpoints are written to a temporary name and renamed, so those already there are whole
+            print(f"error: cannot write {err.filename or 'a file'}: {err.strerror}; results and checkpoints "
+                  "already written are whole; free some space or pick another place", file=sys.stderr)
             return 2
         raise
 

@@ -4,17 +4,22 @@ Every catalogue entry runs the real command (`python -m tinyrnnt ...`) in a
 scratch folder and is judged from outside: a clear error is exit code 2 with
 one `error:` line and no traceback. After each entry the folder is searched
 for half-written files (temporary names, half-made run folders), and files a
-user put there are checked to still be there unchanged. Fault: a training
-process killed at a checkpoint and resumed, compared with an uninterrupted
-run (the catalogue also holds an output folder that cannot be created). Load: a 100,000-entry list, and
-decoding time at two split sizes. Last, a wheel of the project is installed
-away from the checkout and the main job runs from it on a tiny corpus.
+user put there are checked to still be there unchanged. The catalogue also
+holds output places that cannot take the work: one under a regular file, a
+folder without write permission and a disk with 1 MB free (see `write_traps`).
+Faults: a training process killed with SIGKILL at a random step and resumed,
+and one whose disk fills up mid-run, resumed once there is room again, each
+compared tensor by tensor with an uninterrupted run. Load: a 100,000-entry
+list, and decoding time at two split sizes. Last, a wheel of the project is
+installed away from the checkout and the main job runs from it on a tiny corpus.
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
+import random
 import signal
 import subprocess
 import sys
@@ -58,7 +63,36 @@ def _partial_files(root: Path) -> list[str]:
     return bad
 
 
-def catalogue(root: Path, corpus: Path, ckpt: Path) -> list[tuple[str, list]]:
+@contextlib.contextmanager
+def write_traps(root: Path):
+    """{"unwritable": folder, "full": folder} where writing fails, made the way this user can: for a
+    user other than root, a folder without write permission (root writes through permissions);
+    for root, a read-only and a 1 MB tmpfs mount. A trap that cannot be made is left out."""
+    traps, mounted = {}, []
+    try:
+        if os.geteuid() != 0:
+            (root / "locked").mkdir()
+            (root / "locked").chmod(0o555)
+            traps["unwritable"] = root / "locked"
+        else:
+            for name, options in (("unwritable", "ro,size=1m"), ("full", "size=1m")):
+                (root / name).mkdir()
+                if subprocess.run(["mount", "-t", "tmpfs", "-o", options, "tmpfs", str(root / name)],
+                                  capture_output=True).returncode == 0:
+                    traps[name] = root / name
+                    mounted.append(root / name)
+        yield traps
+    finally:
+        for folder in mounted:
+            subprocess.run(["umount", str(folder)], capture_output=True)
+        if (root / "locked").exists():
+            (root / "locked").chmod(0o755)
+
+
+TRAP_NAMES = {"unwritable": "write_protected", "full": "full_disk"}  # catalogue names of the traps
+
+
+def catalogue(root: Path, corpus: Path, ckpt: Path, traps: dict) -> list[tuple[str, list]]:
     """(name, command arguments) of every bad input tried; files they need are written here."""
     w = root / "inputs"
     w.mkdir()
@@ -120,31 +154,89 @@ def catalogue(root: Path, corpus: Path, ckpt: Path) -> list[tuple[str, list]]:
         ("decode_corrupt_card", ["decode", ckpt, "--corpus", w / "corrupt_card"]),
         ("decode_empty_list_file", ["decode", ckpt, "--corpus", w / "empty_lists", "--list-size", "10"]),
         ("decode_bad_manifest", ["decode", ckpt, "--corpus", w / "bad_manifest"]),
-        ("unwritable_run_folder", ["train", f"data.corpus={corpus}", f"run_dir={w / 'list.txt' / 'run'}",
+        ("run_folder_under_a_file", ["train", f"data.corpus={corpus}", f"run_dir={w / 'list.txt' / 'run'}",
                                    "train.steps=2", *TINY]),
-    ]
+    ] + [(f"{TRAP_NAMES[trap]}_{what}", argv) for trap, folder in traps.items() for what, argv in (
+        ("run_folder", ["train", f"data.corpus={corpus}", f"run_dir={folder / 'run'}", "train.steps=2", *TINY]),
+        ("corpus_folder", ["corpus", "--out", folder / "corpus", "--preset", "small"]),
+        ("results_folder", ["experiment", f"data.corpus={corpus}", f"out_dir={folder}", "train.steps=2", *TINY,
+                            "evaluate.splits=[test]", "evaluate.list_sizes=[0]"]),
+        # a decode's results fit in 1 MB: only a folder that takes no file at all refuses it
+        *([("decode_folder", ["decode", ckpt, "--corpus", corpus, "--out", folder / "decoded"])]
+          if trap == "unwritable" else []))]
 
 
-def kill_and_resume(root: Path, corpus: Path) -> bool:
-    """Train 12 steps straight; train again, kill it after its step-4 checkpoint, resume: same weights?"""
+FAULT_STEPS = 24
+
+
+def _same_weights(a: Path, b: Path) -> bool:
     import torch
 
     from tinyrnnt.lab.train import load_model
 
-    args = [f"data.corpus={corpus}", "train.steps=12", *TINY]
-    _cli(["train", "--quiet", f"run_dir={root / 'straight'}", *args], root)
+    x, y = load_model(a)[0].state_dict(), load_model(b)[0].state_dict()
+    return x.keys() == y.keys() and all(torch.equal(x[k], y[k]) for k in x)
+
+
+def _step(ckpt: Path) -> int:
+    import torch
+
+    return int(torch.load(ckpt, map_location="cpu", weights_only=True)["global_step"])
+
+
+def kill_and_resume(root: Path, corpus: Path, args: list, straight: Path, rng: random.Random) -> dict:
+    """Train again, kill it with SIGKILL at a random moment after its first checkpoint, resume it:
+    the weights of the uninterrupted run `straight`?"""
     proc = subprocess.Popen([sys.executable, "-m", "tinyrnnt", "train", "--quiet", f"run_dir={root / 'killed'}",
                              *args], cwd=root, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     last = root / "killed" / "checkpoints" / "last.ckpt"
     deadline = time.time() + 300
     while not last.is_file() and proc.poll() is None and time.time() < deadline:
         time.sleep(0.05)
+    time.sleep(rng.uniform(0.0, 2.0))  # a random step after the first checkpoint
     proc.send_signal(signal.SIGKILL)
     proc.wait()
+    resumed_from = _step(last)
     _cli(["train", "--quiet", "--resume", f"run_dir={root / 'killed'}", *args], root)
-    a = load_model(root / "straight" / "checkpoints" / "last.ckpt")[0].state_dict()
-    b = load_model(last)[0].state_dict()
-    return all(torch.equal(a[k], b[k]) for k in a)
+    identical = _same_weights(straight, last)
+    return {"resumed_from_step": resumed_from, "identical": identical,
+            "survived": identical and resumed_from < FAULT_STEPS}  # it died with steps left to do
+
+
+def disk_fills_during_training(root: Path, args: list, straight: Path) -> dict | None:
+    """Train on a small disk (tmpfs, root only), fill it after the first checkpoint; the run must
+    stop with one clear error and whole checkpoints, then resume (once there is room) to the
+    weights of the uninterrupted run `straight`. None where no such disk can be mounted."""
+    disk = root / "small_disk"
+    disk.mkdir()
+    if os.geteuid() != 0 or subprocess.run(["mount", "-t", "tmpfs", "-o", "size=8m", "tmpfs", str(disk)],
+                                           capture_output=True).returncode != 0:
+        return None
+    try:
+        run = disk / "run"
+        proc = subprocess.Popen([sys.executable, "-m", "tinyrnnt", "train", "--quiet", f"run_dir={run}", *args],
+                                cwd=root, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+        last = run / "checkpoints" / "last.ckpt"
+        while not last.is_file() and proc.poll() is None:
+            time.sleep(0.05)
+        with open(disk / "filler", "wb") as f:  # take every byte left
+            with contextlib.suppress(OSError):
+                while True:
+                    f.write(b"\0" * 65536)
+                    f.flush()
+        err = proc.communicate()[1]
+        lines = [ln for ln in err.strip().splitlines() if ln.strip()]
+        clear = proc.returncode == 2 and bool(lines) and lines[-1].startswith("error: ") and "Traceback" not in err
+        stopped_at = _step(last)
+        temporaries = [p.name for p in run.rglob("*.tmp")]
+        (disk / "filler").unlink()
+        _cli(["train", "--quiet", "--resume", f"run_dir={run}", *args], root)
+        identical = _same_weights(straight, last)
+        return {"stopped_at_step": stopped_at, "clear_error": clear, "temporaries_left": temporaries,
+                "identical": identical, "error": lines[-1][:160] if lines else "",
+                "survived": identical and clear and not temporaries and stopped_at < FAULT_STEPS}
+    finally:
+        subprocess.run(["umount", str(disk)], capture_output=True)
 
 
 def _peak_rss_mb(code: str, cwd: Path) -> tuple[float, float]:
@@ -168,22 +260,31 @@ def run_fault_bench(args) -> dict:
         user.mkdir()
         (user / "notes.txt").write_text("a user's own file")
         saved_config = (ckpt.parent.parent / "config.yaml").read_text()
-        cases = catalogue(root, corpus, ckpt)
         clear, tracebacks, partial, outcomes = 0, 0, [], {}
-        for name, argv in cases:
-            out = _cli(argv, root)
-            lines = [ln for ln in out.stderr.strip().splitlines() if ln.strip()]
-            ok = out.returncode == 2 and bool(lines) and lines[-1].startswith("error: ") and "Traceback" not in out.stderr
-            clear += ok
-            tracebacks += "Traceback" in out.stderr
-            outcomes[name] = "clear" if ok else f"exit {out.returncode}: {(lines or [''])[-1][:160]}"
-            partial += _partial_files(root)
-            _log(f"{name:36s} {outcomes[name]}")
+        with write_traps(root) as traps:
+            cases = catalogue(root, corpus, ckpt, traps)
+            for name, argv in cases:
+                out = _cli(argv, root)
+                lines = [ln for ln in out.stderr.strip().splitlines() if ln.strip()]
+                ok = out.returncode == 2 and bool(lines) and lines[-1].startswith("error: ") and "Traceback" not in out.stderr
+                clear += ok
+                tracebacks += "Traceback" in out.stderr
+                outcomes[name] = "clear" if ok else f"exit {out.returncode}: {(lines or [''])[-1][:160]}"
+                partial += _partial_files(root)
+                _log(f"{name:36s} {outcomes[name]}")
         deletions = int((user / "notes.txt").read_text() != "a user's own file")
         deletions += int((ckpt.parent.parent / "config.yaml").read_text() != saved_config)
-        _log("kill a training process at a checkpoint, resume, compare with an uninterrupted run ...")
-        same = kill_and_resume(root, corpus)
-        _log(f"  identical weights: {same}")
+        # the faults: every random stream in play (model dropout, the trie's cue dropout, training lists)
+        fault_args = [f"data.corpus={corpus}", f"train.steps={FAULT_STEPS}", "bias.kind=trie", "bias.cue_dim=8", *TINY]
+        _cli(["train", "--quiet", f"run_dir={root / 'straight'}", *fault_args], root)
+        straight = root / "straight" / "checkpoints" / "last.ckpt"
+        _log("kill a training process at a random step, resume, compare with an uninterrupted run ...")
+        killed = kill_and_resume(root, corpus, fault_args, straight, random.Random())
+        _log(f"  {killed}")
+        _log("fill the disk during training, resume once there is room, compare ...")
+        full = disk_fills_during_training(root, fault_args, straight)
+        _log(f"  {full if full is not None else 'not tried: mounting a small disk needs root'}")
+        faults = [killed] + ([full] if full is not None else [])
         big = ("import torch; from tinyrnnt.bias.trie import invented_words; import numpy as np\n"
                "from tinyrnnt.data import CorpusSplit; from tinyrnnt.lab.evaluate import evaluate\n"
                "from tinyrnnt.lab.train import load_model\n"
@@ -204,8 +305,10 @@ def run_fault_bench(args) -> dict:
         "partial_files": len(partial),
         "partial_file_names": partial[:5],
         "surprise_deletions": deletions,
-        "faults_injected": 1,  # a training process killed at a checkpoint, then resumed
-        "faults_survived_identical": int(same),
+        "faults_injected": len(faults),  # a training process killed, and (as root) a disk filled mid-run
+        "faults_survived_identical": sum(f["survived"] for f in faults),
+        "kill_resumed_from_step": killed["resumed_from_step"],
+        "full_disk_fault": full,
         "peak_rss_mb_100k_list": round(rss_100k, 1),
         "decode_s_1000_vs_5000_utts": [round(timing[1000][1], 2), round(timing[5000][1], 2)],
         "peak_rss_mb_5000_utts": round(timing[5000][0], 1),

@@ -296,6 +296,18 @@ def check_plan(plan: EvalPlan, corpus: str) -> None:
                             f"{corpus} offers")
 
 
+def check_room(recipe: Recipe, arms: dict[str, Arm]) -> None:
+    """Before anything trains: the results folder can be written and its disk holds every arm still
+    to train (their checkpoints and logs) and the tables."""
+    from tinyrnnt.files import MB, check_output_folder
+    from tinyrnnt.lab.train import run_bytes
+    from tinyrnnt.model.transducer import Transducer
+
+    to_train = [a.cfg for a in arms.values() if not (Path(a.cfg.run_dir) / "checkpoints" / "last.ckpt").is_file()]
+    need = sum(run_bytes(Transducer(c.model, c.bias if c.bias.kind != "none" else None)) for c in to_train)
+    check_output_folder(Path(recipe.out_dir) / recipe.name, need + MB, "results folder")
+
+
 def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False) -> list[dict]:
     """Corpus if needed, train every arm, evaluate, write the tables. With resume, finished arms
     and finished evaluations (same config, same checkpoint) are kept, not recomputed."""
@@ -303,6 +315,7 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
 
     recipe, overrides = split_overrides(read_recipe(path), list(overrides))
     arms = expand_arms(recipe, overrides)
+    check_room(recipe, arms)
     for corpus_of in {arm.cfg.data.corpus: arm.cfg for arm in arms.values()}.values():  # each corpus once
         ensure_corpus(corpus_of, quiet)
         check_plan(recipe.evaluate, corpus_of.data.corpus)

@@ -13,6 +13,7 @@ import torch
 from tinyrnnt import config as C
 from tinyrnnt.data import CorpusSplit, loader
 from tinyrnnt.experiment import ExperimentConfig, experiment_from_dict
+from tinyrnnt.files import MB, check_output_folder
 from tinyrnnt.model.transducer import Transducer
 
 
@@ -78,6 +79,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     valid_dl = loader(valid_split, cfg.data.eval_batch_size, transform=wrap_valid)
 
     task = TransducerTask(C.to_dict(cfg))
+    check_output_folder(run, run_bytes(task), "run_dir")  # writable, with room for the checkpoints
     if cfg.train.init_from:
         weights, _ = read_checkpoint(cfg.train.init_from)
         try:
@@ -160,6 +162,18 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     return TrainResult(run, Path(best.best_model_path or ckpt_dir / "last.ckpt"), ckpt_dir / "last.ckpt",
                        task.train_seconds, trainer.global_step, task.history(trainer.global_step),
                        clock.snapshots, clock)
+
+
+def checkpoint_bytes(model: torch.nn.Module) -> int:
+    """About the size of one checkpoint: float32 weights and Adam's two moments per parameter, and
+    100 kB for the config, loop counters and resume point (measured: 50-60 kB)."""
+    return 3 * 4 * sum(p.numel() for p in model.parameters()) + 100_000
+
+
+def run_bytes(model: torch.nn.Module) -> int:
+    """About the room a training run takes: three checkpoints (best, last, and a temporary one
+    while saving) and 1 MB of logs and configs."""
+    return 3 * checkpoint_bytes(model) + MB
 
 
 def check_budget(cfg: ExperimentConfig) -> None:

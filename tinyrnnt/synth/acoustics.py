@@ -448,3 +448,29 @@ class Renderer:
         x += np.float32(np.exp(cfg.log_floor))  # a soft floor: features never fall below log_floor
         np.log(x, out=x)
         return np.split(x, np.cumsum(p["n_frames"])[:-1]), p["starts"]
+
+
+def expected_frames(utterances: list[list[str]], cfg: AcousticConfig) -> float:
+    """The mean total of frames `Renderer.render` makes for these phone sequences: its duration draws
+    at their means (log-normal jitter exp(sigma^2 / 2); uniform rate on [a, b]: E[1/rate] =
+    ln(b / a) / (b - a); speakers' own rates, centred on 1, taken as 1). For disk-space checks
+    before anything is rendered; the one-frame floor of very short parts is left out.
+
+    >>> cfg = AcousticConfig(rate_range=(1.0, 1.0), duration_jitter=0.0, edge_silence_ms=(50.0, 50.0))
+    >>> expected_frames([[]], cfg)  # an empty utterance is its two edge silences, 50 ms each
+    10.0
+    """
+    rows = _build_rows()
+    lo, hi = cfg.rate_range
+    inv_rate = np.log(hi / lo) / (hi - lo) if hi > lo else 1.0 / lo
+    phone_ms = 0.0
+    for utt in utterances:
+        for p in utt:
+            if p == ph.PAUSE:
+                phone_ms += cfg.pause_prob * (cfg.pause_ms[0] + cfg.pause_ms[1]) / 2
+            else:
+                sym, stress = ph.split_stress(p, allow_pause=True)
+                phone_ms += rows.phone_ms[rows.symbol_id[sym]] * ph.STRESS_DURATION[stress] \
+                    * np.exp(cfg.duration_jitter ** 2 / 2) * inv_rate
+    edges_ms = len(utterances) * (cfg.edge_silence_ms[0] + cfg.edge_silence_ms[1])
+    return float((phone_ms + edges_ms) / cfg.hop_ms)

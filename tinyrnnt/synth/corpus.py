@@ -42,7 +42,8 @@ from pathlib import Path
 import numpy as np
 
 from tinyrnnt.config import ConfigError
-from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, make_speakers
+from tinyrnnt.files import check_output_folder
+from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, expected_frames, make_speakers
 from tinyrnnt.synth.scenario import load_scenario
 from tinyrnnt.synth.sentences import SEEN, RareWord, Sentence, SentenceMaker, TextConfig, build_inventory
 
@@ -231,6 +232,15 @@ def _lists(sentences: list[Sentence], inventory: list[RareWord], index: dict[str
     return out
 
 
+def expected_bytes(cfg: CorpusConfig, splits: dict[str, list[Sentence]]) -> int:
+    """About how many bytes the corpus folder will take: uint8 frames (their expected number, from
+    the duration model), uint16 list rows, manifest lines (their text and spans exactly)."""
+    frames = sum(expected_frames([s.phones for s in sents], cfg.acoustics) for sents in splits.values())
+    rows = sum(len(splits[split]) * (2 if split in CONFUSABLE_SPLITS else 1) for split in LIST_SPLITS)
+    manifests = sum(len(json.dumps({"text": s.text, "spans": s.spans})) + 100 for ss in splits.values() for s in ss)
+    return int(frames * cfg.acoustics.n_mels + rows * cfg.max_list_size * 2 + manifests)
+
+
 def _write_json(path: Path, obj) -> None:
     path.write_text(json.dumps(obj, indent=1) + "\n", encoding="utf-8")
 
@@ -247,11 +257,13 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
     if out_dir.exists() and not (out_dir / "card.json").is_file() and any(out_dir.iterdir()):
         raise CorpusExistsError(f"{out_dir} holds files but no corpus card (card.json): it is not a corpus, "
                                 "so it is not replaced; pick another folder or empty it first")
+    check_output_folder(out_dir, 0, "corpus folder")
     t0 = time.perf_counter()
     scn, inventory, splits = make_text(cfg)
     if cfg.max_list_size > len(inventory) - 8:  # checked before anything is rendered
         raise ConfigError(f"max_list_size {cfg.max_list_size} needs an inventory larger than its "
                          f"{len(inventory)} rare words; lower max_list_size or raise text.n_invented_names")
+    check_output_folder(out_dir, expected_bytes(cfg, splits), "corpus folder")  # room for it all, before rendering
     _progress(f"text: {sum(len(v) for v in splits.values())} sentences, {len(inventory)} rare words "
               f"({time.perf_counter() - t0:.1f} s)", quiet)
     seeds = np.random.SeedSequence(cfg.seed).spawn(9)
