@@ -71,7 +71,21 @@ def make_card(cfg, scn, inventory, splits, stats, list_stats, folder: Path) -> d
             card["splits"][split]["lists"] = {"sizes": list(cfg.list_sizes), "max": cfg.max_list_size,
                                               **list_stats[split]}
     card["train_common_vocabulary"] = len(common)
+    if scn.user_entities:
+        card["user_words"] = user_words(scn, inventory, splits)
     return card
+
+
+def user_words(scn, inventory, splits) -> dict:
+    """The role each word of the scenario's entities file was dealt (familiar, few-shot, unseen
+    (valid), unseen (test), list-only), its slot, and how often each split says it."""
+    from tinyrnnt.synth.sentences import ROLE
+
+    mine = {w for words in scn.user_entities.values() for w in words}
+    uses = Counter((split, sp["word"]) for split, sents in splits.items() for s in sents for sp in s.spans)
+    return {rw.word: {"slot": rw.slot, "role": ROLE[rw.exposure],
+                      "uses": {split: uses[(split, rw.word)] for split in splits if uses[(split, rw.word)]}}
+            for rw in inventory if rw.word in mine}
 
 
 def format_card(card: dict) -> str:
@@ -94,8 +108,24 @@ def format_card(card: dict) -> str:
         f"training common vocabulary {card['train_common_vocabulary']} words; "
         f"few-shot uses in training {inv['few_shot_train_uses']}",
         "inventory by class/exposure: " + ", ".join(f"{k} {v}" for k, v in inv["by_class_and_exposure"].items()),
-        "name styles (spellings by exposure): " + "; ".join(
-            f"{sty}{' (held out of training)' if sty in inv['heldout_name_styles'] else ''}: "
-            + ", ".join(f"{e} {n}" for e, n in counts.items()) for sty, counts in inv["name_styles"].items()),
     ]
+    if inv["name_styles"]:  # a scenario whose names all come from the user's file has none
+        lines.append("name styles (spellings by exposure): " + "; ".join(
+            f"{sty}{' (held out of training)' if sty in inv['heldout_name_styles'] else ''}: "
+            + ", ".join(f"{e} {n}" for e, n in counts.items()) for sty, counts in inv["name_styles"].items()))
+    if card.get("user_words"):
+        lines.append(user_words_line(card["user_words"]))
     return "\n".join(lines)
+
+
+def user_words_line(words: dict) -> str:
+    """The card's line of user words by role.
+
+    >>> user_words_line({"tovrel": {"role": "list-only"}, "dovrin": {"role": "familiar"}})
+    'your words (entities file) by role: familiar: dovrin; list-only: tovrel'
+    """
+    by_role: dict[str, list[str]] = defaultdict(list)
+    for word, info in words.items():
+        by_role[info["role"]].append(word)
+    return "your words (entities file) by role: " + "; ".join(
+        f"{role}: {', '.join(sorted(ws))}" for role, ws in sorted(by_role.items()))

@@ -261,8 +261,11 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
     t0 = time.perf_counter()
     scn, inventory, splits = make_text(cfg)
     if cfg.max_list_size > len(inventory) - 8:  # checked before anything is rendered
-        raise ConfigError(f"max_list_size {cfg.max_list_size} needs an inventory larger than its "
-                         f"{len(inventory)} rare words; lower max_list_size or raise text.n_invented_names")
+        invents = any(c == "invented_name" and s not in scn.user_entities for s, c in scn.entity_slots.items())
+        more = "raise text.n_invented_names" if invents else "add words to the scenario's entities file"
+        raise ConfigError(f"max_list_size {cfg.max_list_size} needs more than {cfg.max_list_size + 8} rare words "
+                         f"in the inventory, scenario {scn.name} gives {len(inventory)}; lower max_list_size "
+                         f"(and list_sizes to match) or {more}")
     check_output_folder(out_dir, expected_bytes(cfg, splits), "corpus folder")  # room for it all, before rendering
     _progress(f"text: {sum(len(v) for v in splits.values())} sentences, {len(inventory)} rare words "
               f"({time.perf_counter() - t0:.1f} s)", quiet)

@@ -57,6 +57,7 @@ class Scenario:
     rare_words: list[str]
     rare_word_max_zipf: float
     user_entities: dict[str, list[str]] = field(default_factory=dict)  # slot -> words
+    entities_file: Path | None = None  # where user_entities came from
     lexicon: Lexicon = field(default_factory=Lexicon)
 
     def slots(self) -> list[str]:
@@ -229,4 +230,5 @@ def load_scenario(name_or_path: str | Path) -> Scenario:
         filler_weight_power=float(filler["weight_power"]),
         compound_parts=[normalize(p) for p in spec["compound_parts"]], rare_words=rare,
         rare_word_max_zipf=max_zipf, user_entities=user_entities, lexicon=lexicon,
+        entities_file=base / spec["entities_file"] if spec.get("entities_file") else None,
     )

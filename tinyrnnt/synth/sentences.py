@@ -109,11 +109,6 @@ def build_inventory(scn: Scenario, cfg: TextConfig, rng: np.random.Generator) ->
     # (class, style) -> groups of (phones, [(word, slot), ...])
     by_kind: dict[tuple[str, str], list[tuple[tuple[str, ...], list[tuple[str, str]]]]] = defaultdict(list)
     name_slots = [s for s, c in scn.entity_slots.items() if c == "invented_name" and s not in scn.user_entities]
-    for slot, words in scn.user_entities.items():
-        groups: dict[tuple[str, ...], list[tuple[str, str]]] = defaultdict(list)
-        for w in dict.fromkeys(words):
-            groups[tuple(scn.lexicon.phones(w))].append((w, slot))
-        by_kind[(scn.entity_slots[slot], "")].extend(groups.items())
     if name_slots:
         used: set[str] = set()
         taken: set[tuple[str, ...]] = set()
@@ -152,7 +147,49 @@ def build_inventory(scn: Scenario, cfg: TextConfig, rng: np.random.Generator) ->
             phones, members = groups[gi]
             inventory.extend(RareWord(w, cls, slot, phones, group_id, exposure, sty) for w, slot in members)
             group_id += 1
+    # A user's own words (entities_file) are dealt slot by slot, so that even a handful per slot
+    # gives every split what it draws on.
+    for slot in sorted(scn.user_entities):
+        groups: dict[tuple[str, ...], list[str]] = defaultdict(list)
+        for w in dict.fromkeys(scn.user_entities[slot]):
+            groups[tuple(scn.lexicon.phones(w))].append(w)
+        cuts = np.cumsum(user_role_sizes(len(groups), cfg, f"{scn.entities_file}: slot {{{slot}}}"))
+        items = list(groups.items())
+        for rank, gi in enumerate(rng.permutation(len(items))):
+            phones, words = items[gi]
+            exposure = EXPOSURES[int(np.searchsorted(cuts, rank, side="right"))]
+            inventory.extend(RareWord(w, scn.entity_slots[slot], slot, phones, group_id, exposure) for w in words)
+            group_id += 1
     return inventory
+
+
+# What every slot must have for the splits to draw on: familiar words (training text fills the
+# places its few-shot words leave), unseen words for the unseen half of valid and for test_unseen.
+NEEDED = ("frequent", "unseen_valid", "unseen_test")
+ROLE = {"frequent": "familiar", "few_shot": "few-shot", "unseen_valid": "unseen (valid)",
+        "unseen_test": "unseen (test)", "distractor": "list-only", "soundalike": "sound-alike"}
+
+
+def user_role_sizes(n: int, cfg: TextConfig, where: str) -> list[int]:
+    """How many of a slot's n user word groups are dealt familiar, few-shot, unseen (valid), unseen
+    (test); the rest are list-only. The shares of `cfg`, but at least one of each NEEDED role;
+    fewer than len(NEEDED) groups is an error naming the slot.
+
+    >>> user_role_sizes(4, TextConfig(), "demo"), user_role_sizes(12, TextConfig(), "demo")
+    ([1, 1, 1, 1], [3, 6, 1, 2])
+    """
+    if n < len(NEEDED):
+        raise ConfigError(f"{where}: {n} word(s) of distinct sound; a slot needs at least {len(NEEDED)} "
+                          f"(one each {', '.join(ROLE[e] for e in NEEDED)}: training text, valid and test_unseen "
+                          "draw on them); add words for this slot to the entities file")
+    sizes = {"frequent": min(cfg.frequent_groups, n // 4), "few_shot": round(cfg.few_shot_share * n),
+             "unseen_valid": round(cfg.unseen_valid_share * n), "unseen_test": round(cfg.unseen_test_share * n)}
+    for e in NEEDED:
+        sizes[e] = max(sizes[e], 1)
+    while sum(sizes.values()) > n:  # give back from the largest share that can spare one
+        spare = max(sizes, key=lambda e: sizes[e] - (e in NEEDED))
+        sizes[spare] -= 1
+    return list(sizes.values())
 
 
 def _proportional_slots(slots: list[str], scn: Scenario):
