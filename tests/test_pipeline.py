@@ -61,6 +61,26 @@ evaluate: {{splits: [test_unseen, test_soundalike], list_sizes: [0, 10]}}
     hyps = (folder / "trie" / "results" / "test_unseen.n10.hyps.jsonl").read_text().splitlines()
     assert len(hyps) == 16
 
+    # beam search with the trie cue and shallow fusion, on the trained trie arm
+    from tinyrnnt.data import CorpusError, CorpusSplit
+    from tinyrnnt.lab.evaluate import evaluate, save_results
+    from tinyrnnt.lab.fusion import sweep_boost, write_curve
+
+    split = CorpusSplit(corpus, "test_unseen")
+    boost = {"weight": 1.0, "where": "after_trigger", "triggers": {"invented_name": ["call", "to"]}}
+    records, summary = evaluate(model, split, list_size=10, search="beam", beam=3, boost=boost)
+    assert summary["search"] == "beam" and summary["boost_weight"] == 1.0 and len(records) == 16
+    assert all(r["nbest"] and r["nbest"][0][0] == r["hyp"] for r in records)
+    assert all([s for _, s in r["nbest"]] == sorted((s for _, s in r["nbest"]), reverse=True) for r in records)
+    save_results(tmp_path / "beam", "t", records, summary)
+    assert len((tmp_path / "beam" / "t.nbest.jsonl").read_text().splitlines()) == 16
+    with pytest.raises(CorpusError, match="class 'crew' is not a class of the biasing list's entries"):
+        evaluate(model, split, list_size=10, search="beam", boost=dict(boost, triggers={"crew": ["call"]}))
+    sweep = sweep_boost(model, str(corpus), weights=(0.0, 2.0), list_size=10, beam=2)
+    assert [r["weight"] for r in sweep["rows"]] == [0.0, 2.0] and sweep["chosen"] in (0.0, 2.0)
+    paths = write_curve(tmp_path / "curve", "boost", sweep)
+    assert all(p.is_file() for p in paths) and paths[2].read_bytes()[:4] == b"\x89PNG"
+
 
 def test_a_control_arm_needs_a_step_budget(tmp_path):
     from tinyrnnt.config import ConfigError

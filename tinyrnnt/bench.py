@@ -4,6 +4,8 @@
     train    training throughput and FLOP utilisation, loss timing, greedy RTF, memory, CER curve
     trie     trie-based deep biasing vs its equal-steps control arm and the baseline: B-WER, U-WER,
              held-out name style, sound-alike false triggers, determinism, cue cost, recipe time
+    fusion   beam search and shallow-fusion boosting (tuned on valid), alone and with the trie cue;
+             after-trigger boosting, RTF, and our beam search against torchaudio's RNNTBeamSearch
     faults   the bad-input catalogue, a killed-and-resumed training, a 100,000-entry list, a wheel install
 
 Each builds what it needs (corpus, checkpoints) when missing. Rates are
@@ -119,6 +121,14 @@ def bench_trie(args) -> dict:
     return run_trie_bench(args)
 
 
+def bench_fusion(args) -> dict:
+    from tinyrnnt.lab.fusionbench import run_fusion_bench
+
+    if args.run_dir == "runs/bench-fusion":
+        args.run_dir = "runs/bench-trie"  # the models of the trie benchmark, shared
+    return run_fusion_bench(args)
+
+
 def bench_faults(args) -> dict:
     from tinyrnnt.lab.faultbench import run_fault_bench
 
@@ -128,7 +138,7 @@ def bench_faults(args) -> dict:
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python -m tinyrnnt.bench", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("name", choices=["corpus", "train", "trie", "faults"])
+    p.add_argument("name", choices=["corpus", "train", "trie", "fusion", "faults"])
     p.add_argument("--corpus", default="corpora/default", help="default corpus folder (built when missing)")
     p.add_argument("--rebuild", action="store_true", help="corpus: rebuild the default corpus to time it")
     p.add_argument("--minutes", type=float, default=None,
@@ -139,13 +149,20 @@ def main(argv=None) -> int:
     p.add_argument("--fresh", action="store_true", help="train/trie: retrain even if a benchmark run exists")
     p.add_argument("--resume", action="store_true",
                    help="trie: with --fresh, keep arms an interrupted run already finished (same settings)")
-    p.add_argument("--run-dir", default=None, help="train/trie: where the benchmark models live "
-                   "(default runs/bench-train, runs/bench-trie)")
+    p.add_argument("--run-dir", default=None, help="train/trie/fusion: where the benchmark models "
+                   "live (default runs/bench-train, runs/bench-trie; fusion uses the trie benchmark's)")
+    p.add_argument("--limit", type=int, default=0,
+                   help="fusion: utterances per split decoded (default 0 = all)")
+    p.add_argument("--quick", action="store_true",
+                   help="fusion: 4 boost weights and N = 100 only (a short look; not the quoted figures)")
+    p.add_argument("--reference-utts", type=int, default=200,
+                   help="fusion: utterances decoded by both our beam search and torchaudio's (default 200)")
     args = p.parse_args(argv)
     args.run_dir = args.run_dir or f"runs/bench-{args.name}"
     if args.name == "train" and args.minutes is None:
         args.minutes = 10.0
-    result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "faults": bench_faults}[args.name](args)
+    result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "fusion": bench_fusion,
+              "faults": bench_faults}[args.name](args)
     result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
     print(json.dumps(result))
     return 0

@@ -64,17 +64,28 @@ def _decode(args) -> int:
     from tinyrnnt.lab.evaluate import evaluate, save_results
     from tinyrnnt.lab.train import load_model
 
-    from tinyrnnt.lab.evaluate import read_list_file
-
     from tinyrnnt.files import MB, check_output_folder
 
-    own_list = read_list_file(args.list_file) if args.list_file else None
+    from tinyrnnt import config as C
+    from tinyrnnt.lab.evaluate import read_list_sections
+
+    not_decode = [x for x in args.settings if not x.startswith("decode.")]
+    if not_decode:
+        raise C.ConfigError(f"decode takes only decode.KEY=VALUE settings, got {not_decode[0]!r}")
+    own_list, own_classes, settings = None, None, list(args.settings)
+    if args.list_file:
+        own_list, own_classes, own_triggers = read_list_sections(args.list_file)
+        if own_triggers:  # the file's trigger phrases; decode.triggers in the settings replaces them
+            settings.insert(0, f"decode.triggers={json.dumps(own_triggers)}")
     model, cfg, _ = load_model(args.checkpoint)
+    cfg = C.apply_overrides(cfg, settings)
     split = CorpusSplit(args.corpus or cfg.data.corpus, args.split)
     out = Path(args.out or Path(args.checkpoint).parent.parent / "decode")
     check_output_folder(out, MB, "decode output folder")  # before decoding, not after
     records, summary = evaluate(model, split, list_size=args.list_size, confusable=args.confusable,
-                                max_symbols=cfg.decode.max_symbols, fixed_list=own_list)
+                                max_symbols=cfg.decode.max_symbols, fixed_list=own_list,
+                                fixed_classes=own_classes, search=cfg.decode.search, beam=cfg.decode.beam,
+                                boost=cfg.decode.boost())
     name = (f"{args.split}.{Path(args.list_file).stem}" if args.list_file
             else f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else ""))
     save_results(out, name, records, summary)
@@ -171,6 +182,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="your own biasing list, one entry a line ('#' starts a comment), used for every utterance "
                         "instead of the corpus lists")
     d.add_argument("--out", default=None, help="folder for results (default: RUN/decode)")
+    d.add_argument("settings", nargs="*", metavar="decode.KEY=VALUE",
+                   help="decoding settings, e.g. decode.search=beam decode.beam=4 decode.boost_weight=2 "
+                        "decode.boost_where=after_trigger 'decode.triggers={invented_name: call | ring}' "
+                        "(search: greedy or beam; boost_where: anywhere or after_trigger)")
     d.set_defaults(fn=_decode)
 
     s = sub.add_parser("score", help="score a hypothesis file (JSON Lines with ref and hyp)")

@@ -16,9 +16,41 @@ from tinyrnnt.synth.corpus import CorpusConfig
 class DecodeConfig:
     max_symbols: int = 4  # tokens per encoder frame at most (guard against never emitting blank)
     batch_size: int = 64  # utterances decoded together
+    search: str = "greedy"  # greedy | beam (tinyrnnt.decode.beam)
+    beam: int = 4  # hypotheses kept per utterance in beam search
+    # Shallow fusion (beam search only): bonus per token of a listed entry being spelled
+    # (tinyrnnt.bias.fusion); 0 = none. "anywhere" in the utterance, or only "after_trigger"
+    # phrases of the entry's class: triggers = {class: "phrase | phrase"}.
+    boost_weight: float = 0.0
+    boost_where: str = "anywhere"
+    triggers: dict = field(default_factory=dict)
 
     def __post_init__(self):
-        C.require(self, "decode", positive=("max_symbols", "batch_size"))
+        from tinyrnnt.bias.fusion import BOOST_WHERE, check_weight, parse_triggers
+
+        C.require(self, "decode", positive=("max_symbols", "batch_size", "beam"))
+        if self.search not in SEARCHES:
+            raise C.ConfigError(f"decode.search must be one of {list(SEARCHES)}, got {self.search!r}")
+        if self.boost_where not in BOOST_WHERE:
+            raise C.ConfigError(f"decode.boost_where must be one of {list(BOOST_WHERE)}, got {self.boost_where!r}")
+        self.boost_weight = check_weight(self.boost_weight)
+        if self.boost_weight != 0 and self.search != "beam":
+            raise C.ConfigError("decode.boost_weight needs decode.search=beam (shallow fusion scores beam hypotheses)")
+        parse_triggers(self.triggers)  # checks phrases now, not mid-decoding
+        if self.boost_where == "after_trigger" and not self.triggers:
+            raise C.ConfigError("decode.boost_where=after_trigger needs decode.triggers, e.g. "
+                                "{invented_name: 'call | message'}")
+
+    def boost(self) -> dict | None:
+        """The beam search's boost argument (None with weight 0: no booster at all)."""
+        from tinyrnnt.bias.fusion import parse_triggers
+
+        if self.boost_weight == 0:
+            return None
+        return {"weight": self.boost_weight, "where": self.boost_where, "triggers": parse_triggers(self.triggers)}
+
+
+SEARCHES = ("greedy", "beam")
 
 
 # Settings that older checkpoints carry but nothing reads any more: dropped when read back.

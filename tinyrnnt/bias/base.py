@@ -142,7 +142,25 @@ class BiasingInput(nn.Module):
 
 
 class Biaser:
-    """Decode-time state holder: one state per hypothesis row."""
+    """Decode-time state holder: one state per hypothesis row.
+
+    A state is a tensor, or a tuple of tensors, whose first dimension is the row; beam search
+    reorders and copies rows with `select` and joins row sets with `cat` (override both for
+    another layout). Rows of one utterance share its list, so a state that is a function of the
+    emitted tokens stays consistent when beam search merges equal hypotheses.
+    """
+
+    def select(self, state, index: Tensor):
+        if isinstance(state, tuple):
+            return tuple(s.index_select(0, index) for s in state)
+        return state.index_select(0, index)
+
+    def cat(self, states: list):
+        import torch
+
+        if isinstance(states[0], tuple):
+            return tuple(torch.cat(parts) for parts in zip(*states))
+        return torch.cat(states)
 
     def start(self, B: int):
         raise NotImplementedError

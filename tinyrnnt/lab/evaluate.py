@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import sys
 import time
 from pathlib import Path
 
@@ -25,30 +26,71 @@ def write_atomic(path: str | Path, text: str) -> None:
 
 def read_list_file(path: str | Path) -> list[str]:
     """A user's biasing list: one entry a line, '#' starts a comment; errors name the file and line."""
+    return read_list_sections(path)[0]
+
+
+def read_list_sections(path: str | Path) -> tuple[list[str], list[str | None], dict[str, str]]:
+    """Entries, the class of each (None outside a section) and trigger phrases per class.
+
+    The file: one entry a line; '#' starts a comment; a line "[class]" starts a class section and
+    "[class] after: phrase | phrase" also gives the class's trigger phrases (after-trigger boosting).
+    """
+    import re
+
     from tinyrnnt.text import check_text, normalize
 
     path = Path(path)
     if not path.is_file():
         raise CorpusError(f"{path}: biasing list file not found")
-    entries = []
+    entries, classes, triggers, current = [], [], {}, None
     for lineno, raw in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
-        entry = normalize(raw.split("#", 1)[0])
+        line = raw.split("#", 1)[0].strip()
+        if line.startswith("["):
+            m = re.fullmatch(r"\[\s*([A-Za-z0-9_]+)\s*\]\s*(?:after\s*:\s*(.*))?", line)
+            if m is None:
+                raise CorpusError(f"{path}:{lineno}: expected a class line '[class]' or "
+                                  f"'[class] after: phrase | phrase', got {line!r}")
+            current = m.group(1)
+            if m.group(2) is not None:
+                from tinyrnnt.bias.fusion import parse_triggers
+                from tinyrnnt.config import ConfigError
+
+                try:
+                    parse_triggers({current: m.group(2)}, where=f"{path}:{lineno}")
+                except ConfigError as err:
+                    raise CorpusError(str(err)) from None
+                triggers[current] = m.group(2)
+            continue
+        entry = normalize(line)
         if entry:
             check_text(entry, f"{path}:{lineno}")
-            entries.append(entry)
+            if entry not in entries:
+                entries.append(entry)
+                classes.append(current)
     if not entries:
         raise CorpusError(f"{path}: the biasing list is empty; expected one entry a line")
-    return list(dict.fromkeys(entries))
+    return entries, classes, triggers
 
 
 def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = False,
              batch_size: int = 64, max_symbols: int = 4, limit: int | None = None,
-             fixed_list: list[str] | None = None) -> tuple[list[dict], dict]:
+             fixed_list: list[str] | None = None, search: str = "greedy", beam: int = 4,
+             boost: dict | None = None, fixed_classes: list[str | None] | None = None,
+             progress: bool = False) -> tuple[list[dict], dict]:
     """Per-utterance records and the corpus summary (score.summarize keys, plus timing).
 
-    fixed_list: one biasing list for every utterance (a user's own) instead of the corpus lists.
+    fixed_list: one biasing list for every utterance (a user's own) instead of the corpus lists;
+    fixed_classes: the entity class of each of its entries (after-trigger boosting).
+    search: "greedy" or "beam" (records then carry "nbest": [[text, score], ...]); boost: shallow
+    fusion for beam search (DecodeConfig.boost()), entry classes filled in from the corpus.
     """
+    from tinyrnnt.decode.beam import beam_search
+
     model.eval()
+    if search not in ("greedy", "beam"):
+        raise ValueError(f"search must be 'greedy' or 'beam', got {search!r}")
+    if boost is not None and search != "beam":
+        raise ValueError("shallow fusion (boost) needs beam search")
 
     def attach(item):
         if fixed_list is not None:
@@ -58,6 +100,12 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
         return item
 
     labels = split.word_labels()  # every inventory word -> its class (and name style)
+    if boost is not None and boost.get("where") == "after_trigger":
+        known = sorted({c for c in fixed_classes if c} if fixed_list is not None else {v[0] for v in labels.values()})
+        unknown = sorted(set(boost.get("triggers", {})) - set(known))
+        if unknown:
+            raise CorpusError(f"decode.triggers: class {unknown[0]!r} is not a class of the biasing list's entries; "
+                              f"known classes: {known}")
     records, decode_s, audio_s = [], 0.0, 0.0
     hop = split.card["features"]["hop_ms"] / 1000.0
     with torch.no_grad():
@@ -67,8 +115,23 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             t0 = time.perf_counter()
             # a biased model always decodes with its biaser; at N = 0 the lists are empty
             biaser = model.bias.decoder(batch["lists"]) if model.bias is not None else None
-            hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols, biaser=biaser)
+            nbest = None
+            if search == "beam":
+                b = None
+                if boost is not None:
+                    classes = ([list(fixed_classes) for _ in batch["lists"]] if fixed_list is not None else
+                               [[labels.get(w, (None,))[0] for w in lst] for lst in batch["lists"]])
+                    b = dict(boost, classes=classes)
+                nbest = beam_search(model, batch["feats"], batch["feat_lens"], batch["lists"], beam=beam,
+                                    max_symbols=max_symbols, boost=b)
+                hyps = [n[0][0] if n else [] for n in nbest]
+            else:
+                hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
+                                     biaser=biaser)
             decode_s += time.perf_counter() - t0
+            if progress:
+                print(f"\r  decoded {len(records) + len(hyps)}/{len(split.items)} utterances", end="",
+                      file=sys.stderr, flush=True)
             audio_s += float(batch["feat_lens"].sum()) * hop
             for k, h in enumerate(hyps):
                 hyp = decode(h)
@@ -76,7 +139,14 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                 counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], labels)
                 records.append({"id": batch["ids"][k], "ref": batch["texts"][k], "hyp": hyp,
                                 "list_size": list_size, "spans": spans, "counts": counts})
+                if nbest is not None:
+                    records[-1]["nbest"] = [[decode(toks), round(score, 4)] for toks, score in nbest[k]]
+    if progress:
+        print(file=sys.stderr)
     summary = summarize(r["counts"] for r in records)
+    summary.update({"search": search, "beam": beam if search == "beam" else None,
+                    "boost_weight": boost["weight"] if boost else 0.0,
+                    "boost_where": boost["where"] if boost else None})
     summary.update({"list_size": list_size, "confusable": confusable, "decode_seconds": round(decode_s, 3),
                     "audio_seconds": round(audio_s, 1), "rtf": decode_s / max(audio_s, 1e-9)})
     summary.update(exposure_recall(records))
@@ -114,6 +184,9 @@ def save_results(out_dir: str | Path, name: str, records: list[dict], summary: d
     out_dir = Path(out_dir)
     write_atomic(out_dir / f"{name}.hyps.jsonl",
                  "".join(json.dumps({k: r[k] for k in RECORD_KEYS}) + "\n" for r in records))
+    if records and "nbest" in records[0]:  # beam search: every kept hypothesis with its score
+        write_atomic(out_dir / f"{name}.nbest.jsonl",
+                     "".join(json.dumps({"id": r["id"], "nbest": r["nbest"]}) + "\n" for r in records))
     write_atomic(out_dir / f"{name}.scores.json", json.dumps(summary, indent=1) + "\n")
 
 

@@ -67,30 +67,26 @@ def repeat_check(cfg, start_checkpoint: str, corpus: str, folder: Path, steps: i
     return all(torch.equal(wa[k], wb[k]) for k in wa) and sa == sb
 
 
-def run_trie_bench(args) -> dict:
-    import torch
-
+def train_recipe(args):
+    """The recipe's arms, trained (or read back from RUN_DIR/trained.json when the settings match)."""
     from tinyrnnt import config as C
-    from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.recipes import ensure_corpus, expand_arms, read_recipe, train_arms
-    from tinyrnnt.lab.train import load_model, read_history
-    from tinyrnnt.score import compare_systems
 
-    small, large, ratio = cue_cost_ratio()
-    _log(f"cue ms: N=10 {small:.2f}, N=5000 {large:.2f} (ratio {ratio:.2f})")
     recipe = read_recipe(RECIPE)
     recipe.out_dir = str(Path(args.run_dir).parent)
     recipe.name = Path(args.run_dir).name
     recipe.seeds = tuple(range(args.seeds))
     overrides = [f"data.corpus={args.corpus}"] + ([f"train.minutes={args.minutes}"] if args.minutes else [])
     arms = expand_arms(recipe, overrides)
-    t_start = time.perf_counter()
     ensure_corpus(next(iter(arms.values())).cfg, build=True)
     corpus_s = json.loads((Path(args.corpus) / "build.json").read_text())["build_seconds"]
     facts_path = Path(args.run_dir) / "trained.json"
     wanted = {key: C.to_dict(arm.cfg) for key, arm in arms.items()}
     trained = json.loads(facts_path.read_text()) if facts_path.is_file() else None
-    if trained is not None and trained.get("configs") != wanted:
+    def training_part(configs: dict) -> dict:  # decoding settings do not change what is trained
+        return {k: {kk: vv for kk, vv in c.items() if kk != "decode"} for k, c in configs.items()}
+
+    if trained is not None and training_part(trained.get("configs", {})) != training_part(wanted):
         _log(f"{facts_path} was trained with other settings: training again")
         trained = None
     if args.fresh or trained is None:
@@ -103,6 +99,20 @@ def run_trie_bench(args) -> dict:
     else:
         _log(f"*** REUSING EARLIER TRAINING from {facts_path} (trained {trained['wall_seconds']:.0f} s); "
              "its figures are quoted as they were. Use --fresh to train again. ***")
+    return recipe, arms, trained, corpus_s
+
+
+def run_trie_bench(args) -> dict:
+    import torch
+
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.lab.train import load_model, read_history
+    from tinyrnnt.score import compare_systems
+
+    small, large, ratio = cue_cost_ratio()
+    _log(f"cue ms: N=10 {small:.2f}, N=5000 {large:.2f} (ratio {ratio:.2f})")
+    t_start = time.perf_counter()
+    recipe, arms, trained, corpus_s = train_recipe(args)
     t_eval = time.perf_counter()
     torch.set_num_threads(2)
     plan = [("test_unseen", n, False) for n in (0, 10, 100, 1000)] + [

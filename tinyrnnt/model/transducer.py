@@ -177,6 +177,18 @@ class Predictor(nn.Module):
             return torch.tanh(self.mix(both)), e[:, -1:]
         return self.lstm(e, state)
 
+    def select_state(self, state, index: Tensor):
+        """The states of rows `index` (decoding: beam search reorders and copies hypotheses)."""
+        if self.cfg.stateless_predictor:
+            return state.index_select(0, index)  # (B, 1, E)
+        return tuple(s.index_select(1, index) for s in state)  # LSTM (layers, B, D) each
+
+    def cat_states(self, states: list):
+        """Rows of several states one after another."""
+        if self.cfg.stateless_predictor:
+            return torch.cat(states, 0)
+        return tuple(torch.cat(parts, 1) for parts in zip(*states))
+
 
 class Joiner(nn.Module):
     """Additive joiner: tanh(W_e enc + W_p pred [+ biasing feature]) -> V logits."""

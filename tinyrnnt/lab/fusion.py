@@ -1,0 +1,93 @@
+"""Tuning the shallow-fusion boost weight on the valid split, and its curve (CSV and PNG).
+
+The weight is chosen on valid by a stated objective (default: lowest WER; ties go
+to the smaller weight) and then used unchanged on the test splits. The curve also
+carries U-WER, B-WER and the false-trigger rate of the sound-alike split at each
+weight, for reading the trade-off; those sound-alike figures are reported, never
+used to choose.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import sys
+from pathlib import Path
+
+from tinyrnnt.lab.evaluate import evaluate, write_atomic
+
+OBJECTIVES = ("wer", "bwer", "uwer")
+DEFAULT_WEIGHTS = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
+
+
+def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid", list_size: int = 100,
+                beam: int = 4, max_symbols: int = 4, where: str = "anywhere", triggers: dict | None = None,
+                objective: str = "wer", limit: int | None = None, soundalike: str | None = "test_soundalike",
+                label: str = "") -> dict:
+    """{"rows": one per weight, "chosen": weight, "objective": ...}; prints progress on stderr."""
+    from tinyrnnt.bias.fusion import check_weight, parse_triggers
+    from tinyrnnt.config import ConfigError
+    from tinyrnnt.data import CorpusSplit
+
+    if objective not in OBJECTIVES:
+        raise ConfigError(f"boost tuning objective must be one of {list(OBJECTIVES)}, got {objective!r}")
+    weights = [check_weight(w, "boost weight grid") for w in weights]
+    if not weights:
+        raise ConfigError("boost weight grid is empty; give at least one weight")
+    parsed = parse_triggers(triggers or {})
+    valid = CorpusSplit(corpus, split)
+    alike = CorpusSplit(corpus, soundalike) if soundalike else None
+    rows = []
+    for i, w in enumerate(weights, 1):
+        print(f"\r  boost weight {w:g} ({i}/{len(weights)}) {label}", end="", file=sys.stderr, flush=True)
+        boost = {"weight": w, "where": where, "triggers": parsed} if w != 0 else None
+        _, s = evaluate(model, valid, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
+                        boost=boost, limit=limit)
+        row = {"weight": w, "wer": s["wer"], "uwer": s["uwer"], "bwer": s["bwer"], "recall": s["recall"],
+               "precision": s["precision"], "false_trigger_rate": s["false_trigger_rate"]}
+        if alike is not None:
+            _, a = evaluate(model, alike, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
+                            boost=boost, limit=limit)
+            row["soundalike_false_trigger_rate"] = a["false_trigger_rate"]
+            row["soundalike_wer"] = a["wer"]
+        rows.append(row)
+    print(file=sys.stderr)
+    best = min(rows, key=lambda r: (r[objective] if r[objective] is not None else float("inf"), r["weight"]))
+    return {"rows": rows, "chosen": best["weight"], "objective": objective, "split": split,
+            "list_size": list_size, "where": where}
+
+
+def write_curve(folder: str | Path, name: str, sweep: dict) -> list[Path]:
+    """NAME.csv, NAME.json and NAME.png (U-WER, B-WER and false triggers against the weight)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    folder = Path(folder)
+    rows = sweep["rows"]
+    buf = io.StringIO()
+    w = csv.DictWriter(buf, fieldnames=list(rows[0]))
+    w.writeheader()
+    w.writerows(rows)
+    write_atomic(folder / f"{name}.csv", buf.getvalue())
+    write_atomic(folder / f"{name}.json", json.dumps(sweep, indent=1) + "\n")
+    fig, ax = plt.subplots(figsize=(6, 4))
+    x = [r["weight"] for r in rows]
+    for key, text in (("uwer", f"U-WER ({sweep['split']})"), ("bwer", f"B-WER ({sweep['split']})"),
+                      ("soundalike_false_trigger_rate", "false triggers (sound-alike)")):
+        if key in rows[0]:
+            ax.plot(x, [r[key] if r[key] is not None else float("nan") for r in rows], marker="o", label=text)
+    ax.axvline(sweep["chosen"], color="grey", linestyle="--", label=f"chosen {sweep['chosen']:g} "
+                                                                    f"(lowest {sweep['objective'].upper()})")
+    ax.set_xlabel("boost weight")
+    ax.set_ylabel("rate")
+    ax.set_title(f"{name}: shallow fusion at N = {sweep['list_size']}, {sweep['where']}")
+    ax.legend()
+    fig.tight_layout()
+    tmp = folder / f".{name}.png.tmp"
+    fig.savefig(tmp, format="png", dpi=100)
+    plt.close(fig)
+    tmp.replace(folder / f"{name}.png")
+    return [folder / f"{name}.{ext}" for ext in ("csv", "json", "png")]
