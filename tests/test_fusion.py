@@ -84,7 +84,7 @@ def test_after_trigger_only_boosts_after_a_phrase_of_the_class():
 ])
 def test_bad_boost_settings_are_clear_errors(setting, message):
     with pytest.raises(ConfigError, match=message):
-        C.apply_overrides(ExperimentConfig(), ["decode.search=beam", "decode.boost_weight=1", setting])
+        C.apply_overrides(ExperimentConfig(), ["decode.search=beam", "decode.boost_weight=1", setting]).decode.boost()
 
 
 def test_boost_needs_beam_search_and_list_words_in_the_inventory():

@@ -215,7 +215,12 @@ def main(argv: list[str] | None = None) -> int:
         from tinyrnnt.bench import main as bench_main
 
         return bench_main(argv[1:])
-    args = build_parser().parse_args(argv)
+    parser = build_parser()
+    args, extra = parser.parse_known_args(argv)
+    if getattr(args, "fn", None) is _decode and all("=" in x and not x.startswith("-") for x in extra):
+        args.settings = list(args.settings) + extra  # decode.KEY=VALUE settings given after the options
+    elif extra:
+        parser.error(f"unrecognized arguments: {' '.join(extra)}")
     try:
         return _run(args)
     except KeyboardInterrupt:

@@ -37,9 +37,6 @@ class DecodeConfig:
         if self.boost_weight != 0 and self.search != "beam":
             raise C.ConfigError("decode.boost_weight needs decode.search=beam (shallow fusion scores beam hypotheses)")
         parse_triggers(self.triggers)  # checks phrases now, not mid-decoding
-        if self.boost_where == "after_trigger" and not self.triggers:
-            raise C.ConfigError("decode.boost_where=after_trigger needs decode.triggers, e.g. "
-                                "{invented_name: 'call | message'}")
 
     def boost(self) -> dict | None:
         """The beam search's boost argument (None with weight 0: no booster at all)."""
@@ -47,6 +44,9 @@ class DecodeConfig:
 
         if self.boost_weight == 0:
             return None
+        if self.boost_where == "after_trigger" and not self.triggers:  # checked here: settings come one by one
+            raise C.ConfigError("decode.boost_where=after_trigger needs decode.triggers, e.g. "
+                                "{invented_name: 'call | message'}")
         return {"weight": self.boost_weight, "where": self.boost_where, "triggers": parse_triggers(self.triggers)}
 
 

@@ -101,6 +101,7 @@ def catalogue(root: Path, corpus: Path, ckpt: Path, traps: dict) -> list[tuple[s
     (w / "broken.jsonl").write_text('{"ref": "a", "hyp": "a"}\n{not json\n')
     (w / "other.jsonl").write_text(json.dumps({"id": "valid-000001", "ref": "a", "hyp": "a", "list_size": 10}) + "\n")
     (w / "list.txt").write_text("maren\nkell7\n")
+    (w / "sections.txt").write_text("[crew after: call\nmaren\n")
     (w / "half.ckpt").write_bytes(ckpt.read_bytes()[: ckpt.stat().st_size // 2])
     import torch
 
@@ -154,6 +155,16 @@ def catalogue(root: Path, corpus: Path, ckpt: Path, traps: dict) -> list[tuple[s
         ("decode_corrupt_card", ["decode", ckpt, "--corpus", w / "corrupt_card"]),
         ("decode_empty_list_file", ["decode", ckpt, "--corpus", w / "empty_lists", "--list-size", "10"]),
         ("decode_bad_manifest", ["decode", ckpt, "--corpus", w / "bad_manifest"]),
+        ("boost_weight_not_finite", ["decode", ckpt, "--corpus", corpus, "decode.search=beam",
+                                     "decode.boost_weight=.inf"]),
+        ("boost_without_beam", ["decode", ckpt, "--corpus", corpus, "decode.boost_weight=2"]),
+        ("trigger_phrase_empty", ["decode", ckpt, "--corpus", corpus, "decode.search=beam", "decode.boost_weight=2",
+                                  "decode.boost_where=after_trigger", "decode.triggers={invented_name: 'call | '}"]),
+        ("trigger_unknown_class", ["decode", ckpt, "--corpus", corpus, "--list-size", "10", "decode.search=beam",
+                                   "decode.boost_weight=2", "decode.boost_where=after_trigger",
+                                   "decode.triggers={crew: call}"]),
+        ("list_file_bad_class_line", ["decode", ckpt, "--corpus", corpus, "--list-file", w / "sections.txt",
+                                      "decode.search=beam", "decode.boost_weight=2"]),
         ("run_folder_under_a_file", ["train", f"data.corpus={corpus}", f"run_dir={w / 'list.txt' / 'run'}",
                                    "train.steps=2", *TINY]),
     ] + [(f"{TRAP_NAMES[trap]}_{what}", argv) for trap, folder in traps.items() for what, argv in (
