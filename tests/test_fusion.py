@@ -113,3 +113,23 @@ def test_list_file_sections_and_triggers(tmp_path):
     f.write_text("[crew] after: call ||\nkell\n")
     with pytest.raises(CorpusError, match=r"mine.txt:1.*empty"):
         read_list_sections(f)
+
+
+@pytest.mark.parametrize("variant, message", [
+    ({"search": "beam", "width": 4}, "unknown key 'width'"),
+    ({"boost_weight": "tuned"}, "needs decode.search=beam"),
+    ({"search": "beam", "boost_weight": 1, "boost_where": "after_trigger"}, "needs decode.triggers"),
+    ("beam", "must be a mapping"),
+])
+def test_bad_decoding_variants_in_a_recipe_fail_before_training(variant, message):
+    from tinyrnnt.lab.recipes import EvalPlan
+
+    with pytest.raises(ConfigError, match=f"evaluate.decoding.v.*{message}"):
+        EvalPlan(decoding={"v": variant})
+
+
+def test_the_built_in_fusion_recipe_reads():
+    from tinyrnnt.lab.recipes import read_recipe
+
+    plan = read_recipe("trie_fusion").evaluate
+    assert list(plan.variants()) == ["greedy", "beam", "beam_fusion", "beam_fusion_after_trigger"]

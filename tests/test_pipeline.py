@@ -36,19 +36,31 @@ shared:
 runs:
   baseline: {{}}
   trie: {{bias: {{kind: trie, cue_dim: 8, token_boost: true}}, train: {{init_from: "run:baseline", steps: 4}}}}
-evaluate: {{splits: [test_unseen, test_soundalike], list_sizes: [0, 10]}}
+evaluate:
+  splits: [test_unseen, test_soundalike]
+  list_sizes: [0, 10]
+  decoding:
+    greedy: {{}}
+    beam_fusion: {{search: beam, beam: 2, boost_weight: tuned}}
+  tune: {{list_size: 10, weights: [0, 2]}}
 """)
     rows = run_recipe(recipe, quiet=True)
     runs = {"baseline", "trie", "trie_control"}
-    assert {(r["run"], r["split"], r["list_size"]) for r in rows} == {
-        (run, split, n) for run in runs for split in ("test_unseen", "test_soundalike") for n in (0, 10)}
+    assert {(r["run"], r["decoding"], r["split"], r["list_size"]) for r in rows} == {
+        (run, d, split, n) for run in runs for d in ("greedy", "beam_fusion")
+        for split in ("test_unseen", "test_soundalike") for n in (0, 10)}
+    tuned = {r["run"]: r["boost_weight"] for r in rows if r["decoding"] == "beam_fusion"}
+    assert set(tuned.values()) <= {0.0, 2.0}
+    assert (tmp_path / "runs" / "smoke" / "trie" / "results" / "boost_curve.beam_fusion.png").is_file()
+    rows = [r for r in rows if r["decoding"] == "greedy"]
     # equal training: the trie arm and its control both stand on the baseline's 6 steps plus 4 of their own
     steps = {r["run"]: r["steps"] for r in rows}
     assert steps == {"baseline": 6, "trie": 10, "trie_control": 10}
     folder = tmp_path / "runs" / "smoke"
     table = json.loads((folder / "results.json").read_text())
-    assert table == json.loads(json.dumps(rows))
+    assert [r for r in table if r["decoding"] == "greedy"] == json.loads(json.dumps(rows))
     comparisons = json.loads((folder / "comparisons.json").read_text())
+    comparisons = [c for c in comparisons if c["decoding"] == "greedy"]
     assert {(c["system"], c["against"], c["role"]) for c in comparisons} == {
         ("trie", "trie_control", "control"), ("trie", "baseline", "start")}
     assert all(c["steps"] == c["against_steps"] for c in comparisons if c["role"] == "control")

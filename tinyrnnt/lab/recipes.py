@@ -47,11 +47,66 @@ class EvalPlan:
     # "last": the weights after the whole budget (equal steps for every arm); "best": the
     # checkpoint with the lowest valid CER (each arm then stops at its own step count).
     checkpoint: str = "last"
+    # Ways of decoding every arm, by name: {search, beam, boost_weight, boost_where, triggers}
+    # (decode.* settings); boost_weight "tuned" picks it on `tune.split` for each arm. Empty = the
+    # arm's own decode settings, named "greedy".
+    decoding: dict = field(default_factory=dict)
+    tune: TunePlan = field(default_factory=lambda: TunePlan())
 
     def __post_init__(self):
         if self.checkpoint not in CHECKPOINT_CHOICES:
             raise C.ConfigError(f"evaluate.checkpoint must be one of {CHECKPOINT_CHOICES}, got {self.checkpoint!r}")
         C.require(self, "evaluate", at_least_zero=("limit",))
+        for name, variant in self.decoding.items():
+            decode_settings(name, variant)  # checks every variant now, before any training
+
+    def variants(self) -> dict[str, dict]:
+        return self.decoding or {"greedy": {}}
+
+
+DECODING_KEYS = ("search", "beam", "boost_weight", "boost_where", "triggers", "max_symbols")
+
+
+def decode_settings(name: str, variant) -> tuple[dict, bool]:
+    """A decoding variant's decode.* settings (boost weight 1 standing in for "tuned") and whether
+    its weight is tuned; errors name evaluate.decoding.NAME."""
+    from tinyrnnt.experiment import DecodeConfig
+
+    where = f"evaluate.decoding.{name}"
+    if not isinstance(variant, dict):
+        raise C.ConfigError(f"{where} must be a mapping of decode settings ({', '.join(DECODING_KEYS)}), "
+                            f"got {variant!r}")
+    unknown = sorted(set(variant) - set(DECODING_KEYS))
+    if unknown:
+        raise C.ConfigError(f"{where}: unknown key {unknown[0]!r}; valid keys: {list(DECODING_KEYS)}")
+    tuned = variant.get("boost_weight") == "tuned"
+    settings = dict(variant, boost_weight=1.0) if tuned else dict(variant)
+    try:
+        DecodeConfig(**settings).boost()
+    except C.ConfigError as err:
+        raise C.ConfigError(f"{where}: {err}") from None
+    except TypeError as err:
+        raise C.ConfigError(f"{where}: {err}") from None
+    return settings, tuned
+
+
+@dataclass
+class TunePlan:
+    """Where and how "tuned" boost weights are chosen (tinyrnnt.lab.fusion.sweep_boost)."""
+
+    split: str = "valid"
+    list_size: int = 100
+    weights: tuple[float, ...] = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
+    objective: str = "wer"  # lowest wer | bwer | uwer on the tuning split
+
+    def __post_init__(self):
+        from tinyrnnt.lab.fusion import OBJECTIVES
+
+        C.require(self, "evaluate.tune", at_least_zero=("list_size",))
+        if self.objective not in OBJECTIVES:
+            raise C.ConfigError(f"evaluate.tune.objective must be one of {list(OBJECTIVES)}, got {self.objective!r}")
+        if not self.weights:
+            raise C.ConfigError("evaluate.tune.weights is empty; give at least one boost weight")
 
 
 @dataclass
@@ -209,6 +264,11 @@ def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False, build: bool = Fals
             print(format_card(card), file=sys.stderr)
 
 
+def _training_part(config: dict) -> dict:
+    """A saved config without its decoding settings, which do not change what is trained."""
+    return {k: v for k, v in config.items() if k != "decode"}
+
+
 def _train_one(cfg: ExperimentConfig, quiet: bool, resume: bool = False) -> dict:
     """Train one arm; a finished arm leaves `trained.json` (its config and result) in its run folder.
 
@@ -223,7 +283,7 @@ def _train_one(cfg: ExperimentConfig, quiet: bool, resume: bool = False) -> dict
     marker = Path(cfg.run_dir) / "trained.json"
     if resume and marker.is_file():
         done = json.loads(marker.read_text(encoding="utf-8"))
-        if done["config"] == C.to_dict(cfg):
+        if _training_part(done["config"]) == _training_part(C.to_dict(cfg)):
             if not quiet:
                 print(f"{cfg.run_dir}: already trained, kept", file=sys.stderr)
             return done["result"]

@@ -18,6 +18,7 @@ import statistics
 import sys
 from pathlib import Path
 
+from tinyrnnt import config as C
 from tinyrnnt.lab.evaluate import write_atomic
 
 TABLE_KEYS = ("wer", "cer", "uwer", "uwer_subdel", "uwer_ins_near_biased", "bwer", "recall", "precision",
@@ -26,12 +27,16 @@ COMPARED = ("wer", "uwer", "bwer")
 
 
 def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = False, resume: bool = False) -> dict:
-    """{(arm key, split, list size): (records, summary)}; summaries carry the checkpoint's history.
+    """{(arm key, decoding, split, list size): (records, summary)}; summaries carry the checkpoint's
+    history. A decoding whose boost weight is "tuned" gets its weight from a sweep on plan.tune's
+    split for each arm (the curve lands in the arm's results folder), then uses it on every split.
 
-    With resume, an evaluation already on disk for the same checkpoint and limit is read back.
+    With resume, an evaluation already on disk for the same checkpoint, limit and decoding is read back.
     """
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, load_results, save_results
+    from tinyrnnt.lab.fusion import sweep_boost, write_curve
+    from tinyrnnt.lab.recipes import decode_settings
     from tinyrnnt.lab.train import load_model, read_history
 
     results = {}
@@ -39,32 +44,55 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
         ckpt = trained[key][f"{plan.checkpoint}_checkpoint"]
         model = None
         history = read_history(ckpt)
-        for split_name in plan.splits:
-            split = CorpusSplit(arm.cfg.data.corpus, split_name)
-            for n in plan.list_sizes:
-                folder, name = Path(arm.cfg.run_dir) / "results", f"{split_name}.n{n}"
-                kept = load_results(folder, name) if resume else None
-                if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
-                        and kept[1].get("history") == history:
-                    results[(key, split_name, n)] = kept
-                    continue
-                if model is None:
-                    model, _, _ = load_model(ckpt)
-                records, summary = evaluate(model, split, list_size=n, max_symbols=arm.cfg.decode.max_symbols,
-                                            limit=plan.limit or None)
-                summary.update(history=history, checkpoint=ckpt, limit=plan.limit)
-                save_results(folder, name, records, summary)
-                results[(key, split_name, n)] = (records, summary)
-                if not quiet:
-                    print(f"evaluated {key} on {split_name} at N={n}: WER {summary['wer']:.3f}", file=sys.stderr)
+        folder = Path(arm.cfg.run_dir) / "results"
+        for variant, raw in plan.variants().items():
+            settings, tuned = decode_settings(variant, raw)
+            dcfg = C.apply_overrides(arm.cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()])
+            weight, need_tuning = dcfg.boost_weight, tuned
+            for split_name in plan.splits:
+                for n in plan.list_sizes:
+                    name = f"{split_name}.n{n}" if variant == "greedy" else f"{variant}.{split_name}.n{n}"
+                    kept = load_results(folder, name) if resume else None
+                    if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
+                            and kept[1].get("history") == history and kept[1].get("decoding") == raw:
+                        results[(key, variant, split_name, n)] = kept
+                        if tuned:  # the weight tuned before, read back
+                            weight, need_tuning = kept[1]["boost_weight"], False
+                        continue
+                    if model is None:
+                        model, _, _ = load_model(ckpt)
+                    if need_tuning:
+                        sweep = sweep_boost(model, arm.cfg.data.corpus, plan.tune.weights, plan.tune.split,
+                                            plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
+                                            dcfg.triggers, plan.tune.objective, plan.limit or None,
+                                            label=f"{key} {variant}")
+                        write_curve(folder, f"boost_curve.{variant}", sweep)
+                        weight, need_tuning = sweep["chosen"], False
+                        if not quiet:
+                            print(f"{key} {variant}: boost weight {weight:g} chosen on {plan.tune.split}",
+                                  file=sys.stderr)
+                    boost = None
+                    if weight != 0:
+                        boost = C.apply_overrides(dcfg, [f"boost_weight={weight}"]).boost()
+                    records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
+                                                max_symbols=dcfg.max_symbols, limit=plan.limit or None,
+                                                search=dcfg.search, beam=dcfg.beam, boost=boost)
+                    summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
+                                   boost_weight=weight)
+                    save_results(folder, name, records, summary)
+                    results[(key, variant, split_name, n)] = (records, summary)
+                    if not quiet:
+                        print(f"evaluated {key} ({variant}) on {split_name} at N={n}: WER {summary['wer']:.3f}",
+                              file=sys.stderr)
     return results
 
 
 def result_rows(arms: dict, results: dict) -> list[dict]:
     rows = []
-    for (key, split, n), (_, summary) in results.items():
+    for (key, variant, split, n), (_, summary) in results.items():
         arm = arms[key]
-        rows.append({"run": arm.run, "seed": arm.seed, "split": split, "list_size": n,
+        rows.append({"run": arm.run, "seed": arm.seed, "decoding": variant, "boost_weight": summary.get("boost_weight"),
+                     "split": split, "list_size": n,
                      "steps": summary["history"]["steps"], "train_s": round(summary["history"]["seconds"], 1),
                      **{k: summary.get(k) for k in TABLE_KEYS}})
     return rows
@@ -90,18 +118,18 @@ def comparison_rows(arms: dict, results: dict) -> list[dict]:
     from tinyrnnt.score import compare_systems
 
     rows = []
-    for (key, split, n), (records, summary) in results.items():
+    for (key, variant, split, n), (records, summary) in results.items():
         arm = arms[key]
         for role, other in (("control", arm.control), ("start", arm.reference)):
             if other is None:
                 continue
-            theirs, their_summary = results[(other, split, n)]
+            theirs, their_summary = results[(other, variant, split, n)]
             mine = {r["id"]: r["counts"] for r in records}
             them = {r["id"]: r["counts"] for r in theirs}
             for rate in COMPARED:
                 cmp = compare_systems(them, mine, rate=rate)
                 rows.append({"system": arm.run, "against": arms[other].run, "role": role, "seed": arm.seed,
-                             "split": split, "list_size": n, "metric": rate,
+                             "decoding": variant, "split": split, "list_size": n, "metric": rate,
                              "steps": summary["history"]["steps"], "against_steps": their_summary["history"]["steps"],
                              "value": cmp["rate_b"], "against_value": cmp["rate_a"], "delta": cmp["delta"],
                              "low": cmp["low"], "high": cmp["high"], "p_improvement": cmp["p_improvement"],
@@ -113,12 +141,12 @@ def seed_rows(rows: list[dict]) -> list[dict]:
     """Mean and spread (sample standard deviation) over training seeds, per run, split and N."""
     groups: dict[tuple, list[dict]] = {}
     for r in rows:
-        groups.setdefault((r["run"], r["split"], r["list_size"]), []).append(r)
+        groups.setdefault((r["run"], r["decoding"], r["split"], r["list_size"]), []).append(r)
     out = []
-    for (run, split, n), rs in groups.items():
+    for (run, variant, split, n), rs in groups.items():
         if len(rs) < 2:
             continue
-        row = {"run": run, "split": split, "list_size": n, "seeds": len(rs)}
+        row = {"run": run, "decoding": variant, "split": split, "list_size": n, "seeds": len(rs)}
         for k in ("wer", "uwer", "bwer", "recall"):
             vals = [r[k] for r in rs if r[k] is not None]
             row[f"{k}_mean"] = statistics.fmean(vals) if vals else None
@@ -159,7 +187,7 @@ def write_tables(folder: Path, arms: dict, results: dict) -> dict:
     for name, table in parts:
         write_atomic(folder / f"{name}.csv", _csv(table))
         write_atomic(folder / f"{name}.json", json.dumps(table, indent=1) + "\n")
-    short = [{k: c[k] for k in ("system", "against", "role", "seed", "split", "list_size", "metric", "steps",
+    short = [{k: c[k] for k in ("system", "against", "role", "seed", "decoding", "split", "list_size", "metric", "steps",
                                 "against_steps", "value", "against_value", "low", "high", "verdict")}
              for c in comparisons]
     md = ("## Results (steps and training seconds: totals behind each evaluated model)\n\n"
