@@ -107,6 +107,9 @@ class PeakyModel(torch.nn.Module):
     def cat_states(self, states):
         return torch.cat(states)
 
+    def put_state(self, state, index, rows, inplace=False):
+        return state.index_copy_(0, index, rows) if inplace else state.index_copy(0, index, rows)
+
     def token_logits(self, hidden, feature=None):
         return 20 * hidden
 

@@ -58,6 +58,8 @@ class _Rows:
 class _Search:
     def __init__(self, model, biaser, booster):
         self.model, self.biaser, self.booster = model, biaser, booster
+        self.cache: dict[tuple[int, int], int] = {}  # (prefix hash, length) -> row of labels / states
+        self.labels, self.states = None, None
 
     def take(self, r: _Rows, index: Tensor, score: Tensor | None = None) -> _Rows:
         m = self.model
@@ -95,12 +97,48 @@ class _Search:
         if self.biaser is not None:
             bstate = self.biaser.advance(r.bstate, tokens, torch.ones(n, dtype=torch.bool))
             extra = self.biaser.features(bstate)
-        pe = extra.get("predictor")
-        pred, pstate = m.predictor.step(tokens[:, None], r.pstate, None if pe is None else pe[:, None])
-        label = m.joiner.label_side(pred[:, 0], extra.get("joiner"))
+        pe, jo = extra.get("predictor"), extra.get("joiner")
+        new_hash, new_len = r.hash * _HASH_MUL + tokens, r.length + 1
+        # The predictor (the costly part) runs once per new prefix: for live rows whose prefix no
+        # earlier step computed (the same hypothesis extended by the same token at the next
+        # frame is common); dead rows keep their parent's state.
+        live = torch.nonzero(torch.isfinite(r.score))[:, 0].tolist()
+        keys = list(zip(new_hash.tolist(), new_len.tolist()))
+        hit = [i for i in live if keys[i] in self.cache]
+        miss = [i for i in live if keys[i] not in self.cache]
+        label, pstate = r.label.clone(), r.pstate
+        if miss:
+            idx = torch.tensor(miss)
+            sub = m.predictor.select_state(r.pstate, idx)
+            pred, new = m.predictor.step(tokens[idx, None], sub, None if pe is None else pe[idx, None])
+            lab = m.joiner.label_side(pred[:, 0], None if jo is None else jo[idx])
+            label[idx] = lab
+            pstate = m.predictor.put_state(pstate, idx, new)
+            self.store([keys[i] for i in miss], new, lab)
+        if hit:
+            idx = torch.tensor(hit)
+            rows = torch.tensor([self.cache[keys[i]] for i in hit])
+            label[idx] = self.labels.index_select(0, rows)
+            pstate = m.predictor.put_state(pstate, idx, m.predictor.select_state(self.states, rows))
         ustate = None if self.booster is None else self.booster.advance(r.ustate, tokens)
-        return _Rows(r.score, pstate, label, extra.get("logits"), bstate, ustate, seq, r.length + 1,
-                     r.hash * _HASH_MUL + tokens)
+        return _Rows(r.score, pstate, label, extra.get("logits"), bstate, ustate, seq, new_len, new_hash)
+
+    def store(self, keys: list, state, label: Tensor) -> None:
+        """Keep predictor states and joiner-side vectors of new prefixes, by (hash, length), in
+        buffers that double when full."""
+        pred, n = self.model.predictor, label.shape[0]
+        if self.labels is None:
+            self.labels, self.states, self.used = label.clone(), pred.cat_states([state]), 0
+        elif self.used + n > self.labels.shape[0]:
+            while self.used + n > self.labels.shape[0]:
+                self.labels = torch.cat([self.labels, torch.zeros_like(self.labels)])
+                self.states = pred.cat_states([self.states, self.states])  # the new half is overwritten
+        idx = torch.arange(self.used, self.used + n)
+        self.labels[idx] = label
+        pred.put_state(self.states, idx, state, inplace=True)
+        for k, key in enumerate(keys):
+            self.cache[key] = self.used + k
+        self.used += n
 
 
 @torch.no_grad()

@@ -183,6 +183,15 @@ class Predictor(nn.Module):
             return state.index_select(0, index)  # (B, 1, E)
         return tuple(s.index_select(1, index) for s in state)  # LSTM (layers, B, D) each
 
+    def put_state(self, state, index: Tensor, rows, inplace: bool = False):
+        """`state` with rows `index` replaced by `rows` (a state of len(index) rows): a copy, or
+        `state` itself changed in place."""
+        if self.cfg.stateless_predictor:
+            return state.index_copy_(0, index, rows) if inplace else state.index_copy(0, index, rows)
+        if inplace:
+            return tuple(s.index_copy_(1, index, r) for s, r in zip(state, rows))
+        return tuple(s.index_copy(1, index, r) for s, r in zip(state, rows))
+
     def cat_states(self, states: list):
         """Rows of several states one after another."""
         if self.cfg.stateless_predictor:
