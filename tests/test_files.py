@@ -12,15 +12,8 @@ import torch
 from tinyrnnt.cli import main
 from tinyrnnt.files import OutputError, check_output_folder
 from tinyrnnt.synth.corpus import CorpusConfig, build_corpus, expected_bytes, make_text
-from tinyrnnt.synth.sentences import TextConfig
 
-TINY = dict(train_utts=160, valid_utts=16, test_utts=16, test_unseen_utts=16, test_soundalike_utts=8,
-            max_list_size=200, list_sizes=(0, 10), train_speakers=4, heldout_speakers=2, workers=1,
-            text=TextConfig(n_invented_names=500, n_compounds=150, few_shot_share=0.004,
-                            extra_styles={"fell": 40, "reed": 30}))
-SMALL = ["model.encoder_dim=32", "model.predictor_dim=32", "model.predictor_embed=16", "model.joiner_dim=24",
-         "model.encoder_layers=2", "train.steps=2", "train.minutes=0", "train.threads=1", "data.batch_size=16",
-         "data.valid_subset=16"]
+from test_cli import SMALL, TINY  # the same tiny corpus and model settings as the CLI tests
 
 
 @pytest.fixture(scope="module")

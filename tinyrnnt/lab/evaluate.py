@@ -113,8 +113,6 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             if limit is not None and len(records) >= limit:
                 break
             t0 = time.perf_counter()
-            # a biased model always decodes with its biaser; at N = 0 the lists are empty
-            biaser = model.bias.decoder(batch["lists"]) if model.bias is not None else None
             nbest = None
             if search == "beam":
                 b = None
@@ -126,6 +124,9 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                                     max_symbols=max_symbols, boost=b)
                 hyps = [n[0][0] if n else [] for n in nbest]
             else:
+                # a biased model always decodes with its biaser (beam search builds its own per row);
+                # at N = 0 the lists are empty
+                biaser = model.bias.decoder(batch["lists"]) if model.bias is not None else None
                 hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
                                      biaser=biaser)
             decode_s += time.perf_counter() - t0
