@@ -131,7 +131,7 @@ shared:
   train: {{steps: 4, minutes: 0, validate_every_steps: 2, threads: 1, snapshot_minutes: 0}}
 runs:
   first: {{}}
-  second: {{train: {{steps: 400}}}}
+  second: {{train: {{steps: 100000, minutes: 3}}}}  # far longer than the wait for its first checkpoint
 evaluate: {{splits: [test], list_sizes: [0]}}
 """)
     folder = tmp_path / "runs" / "interrupted"
