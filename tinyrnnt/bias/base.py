@@ -33,6 +33,7 @@ from tinyrnnt.config import ConfigError
 
 INJECTION_POINTS = ("joiner", "predictor", "both")
 BOOST_MODES = ("add", "mix")
+RESPELL_LETTERS = ("seen_pairs", "any")
 REGISTRY: dict[str, type["BiasingInput"]] = {}
 
 
@@ -49,11 +50,18 @@ class ListSampling:
     # list alike: its spelling can only come from the list, so the model learns to follow the list
     # against its own spelling habits (bias.sampler.garble).
     respell_few_shot: float = 0.0
+    # Which edits respelling makes: "seen_pairs" (the edits above, keeping to letter pairs training
+    # text has, never the first letter) or "any" (any letter a-z put in or swapped in anywhere, the
+    # first letter too), so following the list does not depend on the letters it asks for.
+    respell_letters: str = "seen_pairs"
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
 
         require(self, "bias.sampling", fraction=("keep_true", "empty_list", "confusable", "respell_few_shot"))
+        if self.respell_letters not in RESPELL_LETTERS:
+            raise ConfigError(f"bias.sampling.respell_letters must be one of {list(RESPELL_LETTERS)}, "
+                              f"got {self.respell_letters!r}")
         lo, hi = self.size
         if not 0 <= lo <= hi:
             raise ConfigError(f"bias.sampling.size must be [low, high] with 0 <= low <= high, got {list(self.size)}")

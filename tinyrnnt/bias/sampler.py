@@ -55,7 +55,10 @@ class TrainingLists:
         for sp in item["spans"]:
             new = None
             if sp["exposure"] == "few_shot" and rng.random() < self.cfg.respell_few_shot:
-                new = garble(sp["word"], rng, self.letter_pairs)
+                if self.cfg.respell_letters == "any":
+                    new = garble_any(sp["word"], rng)
+                else:
+                    new = garble(sp["word"], rng, self.letter_pairs)
             if new is None or new in self.group_of:
                 spans.append(sp)
                 continue
@@ -120,5 +123,38 @@ def garble(word: str, rng: np.random.Generator, allowed_pairs: frozenset[str], t
                 letters[i] = VOWEL_LETTERS[int(rng.integers(len(VOWEL_LETTERS)))]
         new = "".join(letters)
         if new != word and all(new[k:k + 2] in allowed_pairs for k in range(len(new) - 1)) and is_invented(new):
+            return new
+    return None
+
+
+LETTERS = "abcdefghijklmnopqrstuvwxyz"
+
+
+def garble_any(word: str, rng: np.random.Generator, tries: int = 20) -> str | None:
+    """The word with one or two edits, each a letter a-z swapped in or put in at any place (the
+    first letter too) or a letter doubled, so that its spelling can only come from the list. Unlike
+    `garble` nothing keeps the result to letter patterns training text has: the letters are drawn
+    uniformly, never from a name style's rules. None when no try gives an invented word.
+
+    >>> g = garble_any("kelvar", np.random.default_rng(1))
+    >>> g != "kelvar" and set(g) <= set(LETTERS)
+    True
+    """
+    from tinyrnnt.synth.lexicon import is_invented
+
+    for _ in range(tries):
+        letters = list(word)
+        for _ in range(1 + int(rng.random() < 0.5)):
+            i = int(rng.integers(len(letters)))
+            kind = int(rng.integers(3))
+            letter = LETTERS[int(rng.integers(len(LETTERS)))]
+            if kind == 0:
+                letters[i] = letter  # swap a letter
+            elif kind == 1:
+                letters.insert(i, letter)  # put one in
+            else:
+                letters.insert(i, letters[i])  # double one
+        new = "".join(letters)
+        if new != word and is_invented(new):
             return new
     return None
