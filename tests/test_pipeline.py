@@ -211,3 +211,32 @@ def test_a_failed_start_leaves_no_run_folder_and_a_mistyped_corpus_is_an_error(c
     with pytest.raises(CorpusError, match="no corpus here"):
         ensure_corpus(typo, quiet=True)
     assert not (tmp_path / "corpsu").exists()
+
+
+def test_resume_with_other_settings_trains_anew_rather_than_continue_a_finished_run(corpus, tmp_path):
+    """A finished arm of another recipe (other list sampling, same model sizes) must not pass for a
+    run of the new settings: --resume trains it again, from its own start."""
+    from tinyrnnt.lab.train import read_history
+
+    recipe = tmp_path / "r.yaml"
+    text = f"""
+name: changed
+out_dir: {tmp_path / 'runs'}
+controls: false
+shared:
+  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 4, minutes: 0, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
+runs:
+  trie: {{bias: {{kind: trie, cue_dim: 8, sampling: {{respell_few_shot: RESPELL}}}}}}
+evaluate: {{splits: [test_unseen], list_sizes: [0]}}
+"""
+    recipe.write_text(text.replace("RESPELL", "0.0"))
+    run_recipe(recipe, quiet=True)
+    ckpt = tmp_path / "runs" / "changed" / "trie" / "checkpoints" / "last.ckpt"
+    before = torch.load(ckpt, map_location="cpu", weights_only=False)["state_dict"]
+    recipe.write_text(text.replace("RESPELL", "1.0"))
+    run_recipe(recipe, quiet=True, resume=True)
+    after = torch.load(ckpt, map_location="cpu", weights_only=False)["state_dict"]
+    assert read_history(ckpt)["steps"] == 4  # trained anew for its 4 steps, not stopped at once
+    assert any(not torch.equal(before[k], after[k]) for k in before)  # other lists, other weights

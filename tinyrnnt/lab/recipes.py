@@ -269,6 +269,27 @@ def _training_part(config: dict) -> dict:
     return {k: v for k, v in config.items() if k != "decode"}
 
 
+def _saved_settings_match(saved: Path, cfg: ExperimentConfig) -> bool:
+    """Does the config saved in a run folder train what `cfg` trains? Decoding settings aside;
+    paths compared once resolved; settings added since it was saved take their defaults."""
+    import dataclasses
+
+    if not saved.is_file():
+        return False
+    try:
+        old = C.load(ExperimentConfig, saved)
+    except (C.ConfigError, OSError):
+        return False
+
+    def norm(c: ExperimentConfig) -> dict:
+        plain = dataclasses.replace(c, run_dir="", data=dataclasses.replace(c.data, corpus=""),
+                                    train=dataclasses.replace(c.train, init_from=""))
+        paths = [str(Path(p).resolve()) if p else "" for p in (c.run_dir, c.data.corpus, c.train.init_from)]
+        return {**_training_part(C.to_dict(plain)), "paths": paths}
+
+    return norm(old) == norm(cfg)
+
+
 def _train_one(cfg: ExperimentConfig, quiet: bool, resume: bool = False) -> dict:
     """Train one arm; a finished arm leaves `trained.json` (its config and result) in its run folder.
 
@@ -288,6 +309,12 @@ def _train_one(cfg: ExperimentConfig, quiet: bool, resume: bool = False) -> dict
                 print(f"{cfg.run_dir}: already trained, kept", file=sys.stderr)
             return done["result"]
     again = resume and (Path(cfg.run_dir) / "checkpoints" / "last.ckpt").is_file()
+    if again and marker.is_file() or again and not _saved_settings_match(Path(cfg.run_dir) / "config.yaml", cfg):
+        # subtle: a checkpoint of other settings (a finished run of an older recipe, say) is not
+        # continued: it would pass for a run of these settings. Train anew; train() keeps the
+        # earlier checkpoints one generation back.
+        print(f"{cfg.run_dir}: trained with other settings; training anew", file=sys.stderr)
+        again = False
     r = train(cfg, quiet=quiet, resume=again)
     result = {"best_checkpoint": str(r.best_checkpoint), "last_checkpoint": str(r.last_checkpoint),
               "train_seconds": r.train_seconds, "steps": r.steps, "history": r.history}
