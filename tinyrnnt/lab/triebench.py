@@ -3,7 +3,9 @@
 The recipe (tinyrnnt/recipes/trie_vs_baseline.yaml) trains a baseline for a step budget,
 then the trie arm and its control from the baseline's last checkpoint for the
 same steps, schedule and data order. Gains are stated against the control; the
-baseline stays as a second reference. Also measured: the held-out name style,
+baseline stays as a second reference. Greedy decoding everywhere; the headline
+split (unseen names, N = 100) and the no-list test also with beam search (beam
+4), both arms decoded alike. Also measured: the held-out name style,
 sound-alike false triggers, a repeated short run for determinism, the cue's
 cost against list size, and the whole recipe's time.
 """
@@ -18,6 +20,7 @@ from pathlib import Path
 from tinyrnnt.lab.evaluate import evaluate, save_results, write_atomic
 RECIPE = "trie_vs_baseline"  # the built-in recipe
 HELDOUT = "style:reed"  # label of the held-out name style in the default corpus
+BEAM = 4  # beam width of the beam-search figures
 
 
 def _log(msg: str) -> None:
@@ -115,17 +118,20 @@ def run_trie_bench(args) -> dict:
     recipe, arms, trained, corpus_s = train_recipe(args)
     t_eval = time.perf_counter()
     torch.set_num_threads(2)
-    plan = [("test_unseen", n, False) for n in (0, 10, 100, 1000)] + [
-        ("test_unseen", 100, True), ("test", 0, False), ("test_soundalike", 100, False)]
+    # (split, N, confusable lists, search): greedy everywhere; beam search (beam 4, the decoder
+    # results are usually quoted with) where the headline figures are
+    plan = [("test_unseen", n, False, "greedy") for n in (0, 10, 100, 1000)] + [
+        ("test_unseen", 100, True, "greedy"), ("test", 0, False, "greedy"), ("test_soundalike", 100, False, "greedy"),
+        ("test_unseen", 100, False, "beam"), ("test", 0, False, "beam")]
     results: dict[tuple, tuple] = {}
     for key in arms:
         model = load_model(trained["arms"][key]["last_checkpoint"])[0]
-        for split_name, n, confusable in plan:
+        for split_name, n, confusable, search in plan:
             split = CorpusSplit(args.corpus, split_name)
-            records, summary = evaluate(model, split, list_size=n, confusable=confusable)
-            name = f"{split_name}.n{n}" + (".confusable" if confusable else "")
+            records, summary = evaluate(model, split, list_size=n, confusable=confusable, search=search, beam=BEAM)
+            name = f"{split_name}.n{n}" + (".confusable" if confusable else "") + (f".beam{BEAM}" if search == "beam" else "")
             save_results(Path(arms[key].cfg.run_dir) / "results", name, records, summary)
-            results[(key, split_name, n, confusable)] = (records, summary)
+            results[(key, split_name, n, confusable, search)] = (records, summary)
             _log(f"{key:20s} {name:28s} WER {summary['wer']:.3f} U-WER {summary['uwer'] or 0:.3f} "
                  f"B-WER {summary['bwer'] if summary['bwer'] is not None else float('nan'):.3f} "
                  f"false-trigger {summary['false_trigger_rate'] or 0:.3f}")
@@ -138,14 +144,35 @@ def run_trie_bench(args) -> dict:
     check_s = time.perf_counter() - t_check
     _log(f"repeated short run gives identical weights and metrics: {same} ({check_s:.0f} s)")
 
-    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first):
-        return results[(run + seed_key, split, n, confusable)][1]
+    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first, search="greedy"):
+        return results[(run + seed_key, split, n, confusable, search)][1]
 
-    def counts(run, split="test_unseen", n=100, seed_key=first):
-        return {r["id"]: r["counts"] for r in results[(run + seed_key, split, n, False)][0]}
+    def counts(run, split="test_unseen", n=100, seed_key=first, search="greedy"):
+        return {r["id"]: r["counts"] for r in results[(run + seed_key, split, n, False, search)][0]}
 
-    def reduction(seed_key=first):
-        return 1 - s("trie", seed_key=seed_key)["bwer"] / s("trie_control", seed_key=seed_key)["bwer"]
+    def reduction(seed_key=first, search="greedy"):
+        return 1 - s("trie", seed_key=seed_key, search=search)["bwer"] / s("trie_control", seed_key=seed_key, search=search)["bwer"]
+
+    def beam_figures() -> dict:
+        b = dict(search="beam")
+        ci = compare_systems(counts("trie_control", **b), counts("trie", **b), rate="bwer")
+        uci = compare_systems(counts("trie_control", **b), counts("trie", **b), rate="uwer")
+        wci = compare_systems(counts("trie_control", "test", 0, **b), counts("trie", "test", 0, **b), rate="wer")
+        return {
+            f"bwer_control_beam{BEAM}_n100": r3(s("trie_control", **b)["bwer"]),
+            f"bwer_trie_beam{BEAM}_n100": r3(s("trie", **b)["bwer"]),
+            f"bwer_reduction_vs_control_beam{BEAM}_n100": r3(reduction(search="beam")),
+            f"bwer_delta_vs_control_ci95_beam{BEAM}_n100": [r3(ci["low"]), r3(ci["high"])],
+            f"uwer_control_beam{BEAM}_n100": r3(s("trie_control", **b)["uwer"]),
+            f"uwer_trie_beam{BEAM}_n100": r3(s("trie", **b)["uwer"]),
+            f"uwer_delta_vs_control_ci95_beam{BEAM}_n100": [r3(uci["low"]), r3(uci["high"])],
+            f"wer_control_beam{BEAM}_n0": r3(s("trie_control", "test", 0, **b)["wer"]),
+            f"wer_trie_beam{BEAM}_n0": r3(s("trie", "test", 0, **b)["wer"]),
+            f"wer_delta_vs_control_ci95_beam{BEAM}_n0": [r3(wci["low"]), r3(wci["high"])],
+            f"bwer_control_heldout_style_beam{BEAM}_n100": r3(s("trie_control", **b).get(f"bwer:{HELDOUT}")),
+            f"bwer_trie_heldout_style_beam{BEAM}_n100": r3(s("trie", **b).get(f"bwer:{HELDOUT}")),
+            f"recall_trie_heldout_style_beam{BEAM}_n100": r3(s("trie", **b).get(f"recall:{HELDOUT}")),
+        }
 
     bwer_ci = compare_systems(counts("baseline"), counts("trie"), rate="bwer")
     ctl_ci = compare_systems(counts("trie_control"), counts("trie"), rate="bwer")
@@ -219,6 +246,7 @@ def run_trie_bench(args) -> dict:
         "train_minutes": {key: round(read_history(trained["arms"][key]["last_checkpoint"])["seconds"] / 60, 2)
                           for key in arms},
         "same_seed_same_metrics": same,
+        **beam_figures(),
         "seeds": list(recipe.seeds),
         "bench_wall_s": round(time.perf_counter() - t_start, 1),
     }
