@@ -111,7 +111,10 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
                         check_val_every_n_epoch=None, gradient_clip_val=cfg.train.grad_clip,
                         logger=CSVLogger(run, name="logs"), callbacks=callbacks, enable_progress_bar=not quiet,
                         enable_model_summary=not quiet, num_sanity_val_steps=0, accelerator="cpu",
-                        log_every_n_steps=20, plugins=[AtomicCheckpoints()])
+                        log_every_n_steps=20, plugins=[AtomicCheckpoints()],
+                        # our length buckets give each process its share under distributed training
+                        # (data.shard); Lightning's own sampler would undo the bucketing
+                        use_distributed_sampler=False)
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
     try:
         trainer = L.Trainer(**trainer_args)
