@@ -45,9 +45,9 @@ class TrainResult:
     clock: object = None  # the TrainingClock: utterances, frames, flops counted
 
 
-def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> TrainResult:
-    """Train one model. Everything that can be checked is checked before anything is written:
-    the budget, the corpus, the model against `init_from` or the checkpoint to resume, the Trainer
+def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False, callbacks=()) -> TrainResult:
+    """Train one model (`callbacks`: more Lightning callbacks, e.g. for checks). Everything that can
+    be checked is checked before anything is written: the budget, the corpus, the model against `init_from` or the checkpoint to resume, the Trainer
     settings. A run that fails before its first checkpoint leaves no run folder behind."""
     import lightning as L
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
@@ -103,7 +103,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     clock = TrainingClock(cfg.train.minutes, cfg.train.snapshot_minutes)
     best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True,
                            enable_version_counter=False)
-    callbacks = [clock, best, ExactResume(train_dl.batch_sampler)]
+    callbacks = [clock, best, ExactResume(train_dl.batch_sampler), *callbacks]
     if cfg.train.early_stop_patience:
         callbacks.append(EarlyStopping(monitor="valid_cer", mode="min", patience=cfg.train.early_stop_patience))
     trainer_args = dict(max_epochs=cfg.train.max_epochs, max_steps=cfg.train.steps or -1,
