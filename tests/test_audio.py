@@ -160,3 +160,16 @@ def test_training_on_the_corpus_reads_no_audio(tmp_path, monkeypatch):
                                  "train.validate_every_steps=4", "train.snapshot_minutes=0"])
     result = train(cfg, quiet=True)
     assert result.steps == 8  # two epochs of four batches
+
+
+def test_the_command_reports_a_bad_line_in_one_error_line_or_skips_and_counts(tmp_path, capsys):
+    from tinyrnnt.cli import main
+
+    folder = _corpus_folder(tmp_path, extra=[json.dumps({"audio": "wav/gone.wav", "text": "ka"})])
+    assert main(["audio-corpus", "--manifests", str(folder), "--out", str(tmp_path / "c"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: ") and "train.jsonl:13" in err[0] and "not found" in err[0]
+    assert main(["audio-corpus", "--manifests", str(folder), "--out", str(tmp_path / "c"), "--quiet", "--skip-bad-lines"]) == 0
+    assert "skipped 1 bad lines" in capsys.readouterr().out
+    assert main(["audio-corpus", "--manifests", str(folder), "--out", str(tmp_path / "d"), "--quiet", "features.colour=red"]) == 2
+    assert "unknown key 'features.colour'" in capsys.readouterr().err

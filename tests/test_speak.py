@@ -106,3 +106,9 @@ def test_the_spoken_corpus_goes_through_the_audio_path_to_training_and_decoding(
     model, _, _ = load_model(result.last_checkpoint)
     records, summary = evaluate(model, a, list_size=10)
     assert len(records) == len(a) and 0 <= summary["wer"] and json.dumps(summary)
+    # the exported model decodes alike
+    from tinyrnnt.lab.export import export_checkpoint, load_exported
+
+    exported, _ = load_exported(export_checkpoint(result.last_checkpoint, tmp_path / "model.pt"))
+    again, _ = evaluate(exported, a, list_size=10)
+    assert [r["hyp"] for r in again] == [r["hyp"] for r in records]
