@@ -93,6 +93,7 @@ class WaveRenderer:
                 self.band_of[r] = bands.index(key)
         self.bands = np.array(bands)  # (bands, 4): low Hz, high Hz, low slope, high slope
         self._gains: dict[int, tuple] = {}
+        self._band_filters: dict[tuple, np.ndarray | None] = {}
 
     def formants(self, spk: Speaker) -> tuple[np.ndarray, np.ndarray]:
         """(R, 5) formant Hz for this speaker at formant scale 1 (the feature renderer's rule: men's
@@ -141,26 +142,33 @@ class WaveRenderer:
         snr = rng.uniform(*self.cfg.snr_db, len(utterances))
         gain = rng.uniform(*self.cfg.level_db, len(utterances))
         rng.uniform(-self.cfg.channel_tilt_db, self.cfg.channel_tilt_db, len(utterances))  # tilt: not rendered
-        out = []
         part_utt = p["utt"]
+        prepared = []
         for u in range(len(utterances)):
             sel = np.flatnonzero(part_utt == u)
-            out.append(self._one(p["row"][sel], p["start"][sel], p["end"][sel], p["variant"][sel],
-                                 int(p["n_frames"][u]), int(spk[u]), float(snr[u]), float(gain[u]), rng))
-        return out
+            prepared.append(self._source(p["row"][sel], p["start"][sel], p["variant"][sel],
+                                         int(p["n_frames"][u]), int(spk[u]), rng))
+        ys = _cascade([x for x, *_ in prepared], [f for _, f, *_ in prepared], [b for _, _, b, _ in prepared],
+                      self.block, self.sr)
+        return [self._finish(y, ctx, float(snr[u]), float(gain[u]), rng)
+                for u, (y, (*_, ctx)) in enumerate(zip(ys, prepared))]
 
     def steady(self, phone: str, seconds: float, speaker: int = 0, seed: int = 0) -> np.ndarray:
         """One part held steady (a vowel's target, say), no noise added: for checks."""
         r = self.rows.names.index(phone)
         n = int(seconds * 1000 / self.cfg.hop_ms)
-        return self._one(np.array([r]), np.array([0.0]), np.array([float(n)]), np.array([len(self.scales) // 2]),
-                         n, speaker, None, 0.0, np.random.default_rng(seed))
+        rng = np.random.default_rng(seed)
+        x, freq, bw, ctx = self._source(np.array([r]), np.array([0.0]), np.array([len(self.scales) // 2]), n,
+                                        speaker, rng)
+        return self._finish(_cascade([x], [freq], [bw], self.block, self.sr)[0], ctx, None, 0.0, rng)
 
-    def _one(self, row, start, end, variant, n_frames, s, snr, gain_db, rng) -> np.ndarray:
+    def _source(self, row, start, variant, n_frames, s, rng):
+        """One utterance up to the cascade: its input signal (voice, aspiration, nasal zero), the
+        cascade's formant frequencies and bandwidths per block, and what `_finish` needs."""
         sr, blk = self.sr, self.block
         n = n_frames * self.hop
         n_blocks = -(-n // blk)
-        voice_g, asp_g, fric_g, vowel_power = self.gains(s)
+        voice_g, asp_g, _, _ = self.gains(s)
         spk = self.speakers[s]
         F, BW = self.formants(spk)
         # Block targets: the part holding each block's centre (frames of 10 ms).
@@ -187,14 +195,20 @@ class WaveRenderer:
 
         # Nasal antiresonator: the inverse of a resonator, faded in where a part has a zero.
         zero = self.rows.zero[r] * spk.vocal_tract
-        on = _per_sample(_smooth((zero > 0).astype(float)[:, None], 2)[:, 0], blk, n)
-        za, zb, zc = resonator(np.where(zero > 0, zero, 1000.0), ZERO_BW, sr)
-        za, zb, zc = (_per_sample(v, blk, n) for v in (za, zb, zc))
-        x1, x2 = np.concatenate([[0.0], x[:-1]]), np.concatenate([[0.0, 0.0], x[:-2]])
-        x = (1 - on) * x + on * (x - zb * x1 - zc * x2) / za
+        if (zero > 0).any():
+            on = _per_sample(_smooth((zero > 0).astype(float)[:, None], 2)[:, 0], blk, n)
+            za, zb, zc = resonator(np.where(zero > 0, zero, 1000.0), ZERO_BW, sr)
+            za, zb, zc = (_per_sample(v, blk, n) for v in (za, zb, zc))
+            x1, x2 = np.concatenate([[0.0], x[:-1]]), np.concatenate([[0.0, 0.0], x[:-2]])
+            x = (1 - on) * x + on * (x - zb * x1 - zc * x2) / za
+        return x, np.exp(logf), bw, (r, s, n)
 
-        y = _cascade(x, np.exp(logf), bw, blk, sr)
-
+    def _finish(self, y, ctx, snr, gain_db, rng) -> np.ndarray:
+        """Add the parallel branch, set the level, add background noise, quantise to 16 bits."""
+        r, s, n = ctx
+        blk = self.block
+        _, _, fric_g, vowel_power = self.gains(s)
+        spk = self.speakers[s]
         # Parallel branch: each band in use, unit-power noise, gated by its parts' amplitudes.
         band = self.band_of[r]
         for j in np.unique(band[band >= 0]):
@@ -214,15 +228,21 @@ class WaveRenderer:
         return np.round(y * 32767).astype(np.int16)
 
     def _band_noise(self, j: int, vt: float, noise: np.ndarray) -> np.ndarray:
-        lo, hi, lo_slope, hi_slope = self.bands[j]
-        nyq = self.sr / 2
-        out = noise
-        lo, hi = lo * vt, hi * vt
-        n_lo, n_hi = int(round(lo_slope / 6)), int(round(hi_slope / 6))
-        if n_lo > 0 and lo < nyq * 0.95:
-            out = signal.sosfilt(signal.butter(n_lo, lo, "highpass", fs=self.sr, output="sos"), out)
-        if n_hi > 0 and hi < nyq * 0.95:
-            out = signal.sosfilt(signal.butter(n_hi, hi, "lowpass", fs=self.sr, output="sos"), out)
+        # subtle: band edges scale with the vocal tract in steps of 1 % (filter designs are cached;
+        # a design per speaker cost more than the rest of an utterance)
+        key = (j, round(vt, 2))
+        if key not in self._band_filters:
+            lo, hi, lo_slope, hi_slope = self.bands[j]
+            nyq, lo, hi = self.sr / 2, lo * key[1], hi * key[1]
+            n_lo, n_hi = int(round(lo_slope / 6)), int(round(hi_slope / 6))
+            sos = []
+            if n_lo > 0 and lo < nyq * 0.95:
+                sos.append(signal.butter(n_lo, lo, "highpass", fs=self.sr, output="sos"))
+            if n_hi > 0 and hi < nyq * 0.95:
+                sos.append(signal.butter(n_hi, hi, "lowpass", fs=self.sr, output="sos"))
+            self._band_filters[key] = np.concatenate(sos) if sos else None
+        sos = self._band_filters[key]
+        out = noise if sos is None else signal.sosfilt(sos, noise)
         return out / (np.sqrt(np.mean(out ** 2)) + 1e-12)
 
 
@@ -245,26 +265,35 @@ def _per_sample(values: np.ndarray, blk: int, n: int) -> np.ndarray:
     return np.interp(np.arange(n), centres, values)
 
 
-def _cascade(x: np.ndarray, freq: np.ndarray, bw: np.ndarray, blk: int, sr: float) -> np.ndarray:
-    """x through five resonators in cascade, coefficients per block (freq, bw: (blocks, 5)).
+def _cascade(xs: list[np.ndarray], freqs: list[np.ndarray], bws: list[np.ndarray], blk: int, sr: float
+             ) -> list[np.ndarray]:
+    """Each x through five resonators in cascade, coefficients per block (freqs, bws: (blocks, 5)
+    each), every utterance of the list at once.
 
-    One second-order-section call per block; at each change of coefficients the sections' states
-    are rebuilt from their last two outputs, so the filter memory is the signal, not the old
-    coefficients (what a resonator computed sample by sample would hold).
+    Klatt's recursion sample by sample, vectorised over utterances and sections: section k runs
+    k samples behind section k-1, so at every step each section's input is the output its
+    predecessor made at the step before, and all five update together.
     """
-    a, b, c = resonator(freq, bw, sr)  # (blocks, 5)
-    y = np.empty_like(x)
-    hist = np.zeros((5, 2))  # each section's last two outputs y[-1], y[-2]
-    sos = np.zeros((5, 6))
-    sos[:, 3] = 1.0
-    for i in range(freq.shape[0]):
-        sl = slice(i * blk, min((i + 1) * blk, len(x)))
-        sos[:, 0], sos[:, 4], sos[:, 5] = a[i], -b[i], -c[i]
-        # transposed direct form state of y = A x + B y1 + C y2: (B y1 + C y2, C y1)
-        zi = np.stack([b[i] * hist[:, 0] + c[i] * hist[:, 1], c[i] * hist[:, 0]], 1)
-        out, zf = signal.sosfilt(sos, x[sl], zi=zi)
-        # the sections' own last outputs, read back from the final state: zf = (B y1 + C y2, C y1)
-        y1 = zf[:, 1] / c[i]
-        hist = np.stack([y1, (zf[:, 0] - b[i] * y1) / c[i]], 1)
-        y[sl] = out
-    return y
+    B, K = len(xs), 5
+    n_max, nb = max(len(x) for x in xs), max(len(f) for f in freqs)
+    X = np.zeros((n_max + K - 1, B))  # time first: one row per step
+    for i, x in enumerate(xs):
+        X[: len(x), i] = x
+    pad = lambda a: np.concatenate([a, np.repeat(a[-1:], nb - len(a), 0)])  # noqa: E731
+    A, Bc, C = resonator(np.stack([pad(f) for f in freqs], 1), np.stack([pad(b) for b in bws], 1), sr)  # (nb, B, K)
+    out = np.empty((n_max, B))
+    y1, y2, inp = np.zeros((B, K)), np.zeros((B, K)), np.zeros((B, K))
+    lag = np.arange(K)
+    for n in range(n_max + K - 1):
+        if n % blk < K:  # some section just entered a new block
+            blocks = np.clip((n - lag) // blk, 0, nb - 1)
+            a, b, c = A[blocks, :, lag].T, Bc[blocks, :, lag].T, C[blocks, :, lag].T  # (B, K)
+        inp[:, 0] = X[n]
+        inp[:, 1:] = y1[:, :-1]
+        y = a * inp
+        y += b * y1
+        y += c * y2
+        y1, y2 = y, y1
+        if n >= K - 1:
+            out[n - K + 1] = y[:, K - 1]
+    return [out[: len(x), i].copy() for i, x in enumerate(xs)]
