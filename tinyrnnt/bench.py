@@ -169,6 +169,12 @@ def main(argv=None) -> int:
                    help="audio: utterances rendered and read for the speed figures (default 200, ~7 min of audio)")
     p.add_argument("--work", default=None,
                    help="audio: keep the WAVs, spoken corpus and runs in this folder (default: a temporary one)")
+    p.add_argument("--outside-voice", action="store_true",
+                   help="audio: also build the espeak-ng corpus and run the trie recipe on it (kept in --work, "
+                        "default runs/bench-audio; resumable)")
+    p.add_argument("--outside-preset", default=None, help="audio: corpus preset of the espeak-ng corpus (e.g. small)")
+    p.add_argument("--outside-settings", nargs="*", default=[],
+                   help="audio: recipe settings for the outside-voice run, e.g. train.steps=50 (a quick look)")
     args = p.parse_args(argv)
     args.run_dir = args.run_dir or f"runs/bench-{args.name}"
     if args.name == "train" and args.minutes is None:

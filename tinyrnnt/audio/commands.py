@@ -1,6 +1,6 @@
 """Commands for taking the lab to recorded speech and other machines (registered by tinyrnnt.cli):
 
-    tinyrnnt speak --out DIR [--preset small] [key=value ...]      the synthetic corpus as WAV + manifests
+    tinyrnnt speak --out DIR [--voice espeak] [--preset small] [key=value ...]   the corpus as WAV + manifests
     tinyrnnt audio-corpus --manifests DIR --out DIR [--skip-bad-lines]   audio manifests -> a corpus folder
     tinyrnnt export CHECKPOINT --out FILE                          plain weights + settings (weights_only)
 """
@@ -11,11 +11,18 @@ import json
 
 
 def _speak(args) -> int:
-    from tinyrnnt.audio.speak import speak_corpus
+    from tinyrnnt.audio.speak import FormantVoice, speak_corpus
     from tinyrnnt.synth.corpus import corpus_config
 
     cfg = corpus_config(args.settings, args.preset)
-    info = speak_corpus(cfg, args.out, list_size=args.list_size, overwrite=args.overwrite, quiet=args.quiet)
+    voice = FormantVoice
+    if args.voice == "espeak":
+        from tinyrnnt.audio.outside import EspeakVoice, espeak_path
+
+        espeak_path()  # a missing espeak-ng is one error line saying how to install it, before any work
+        voice = EspeakVoice
+    info = speak_corpus(cfg, args.out, list_size=args.list_size, overwrite=args.overwrite, quiet=args.quiet,
+                        voice=voice)
     print(f"wrote {info['utterances']} utterances, {info['audio_seconds'] / 3600:.2f} h of 16 kHz 16-bit WAV, "
           f"rendered in {info['render_seconds']:.0f} s ({info['audio_seconds'] / max(info['render_seconds'], 1e-9):.0f}x "
           f"real time); manifests in {args.out}; next: tinyrnnt audio-corpus --manifests {args.out} --out CORPUS")
@@ -51,6 +58,9 @@ def add_commands(sub) -> None:
                        epilog="example: tinyrnnt speak --out audio/small --preset small")
     s.add_argument("--out", required=True, help="folder to create: wav/, one <split>.jsonl per split, inventory.tsv")
     s.add_argument("--preset", default=None, help="corpus preset (as for tinyrnnt corpus), e.g. small")
+    s.add_argument("--voice", choices=["formant", "espeak"], default="formant",
+                   help="formant: our synthesizer with the feature corpus's speakers and durations (default); "
+                        "espeak: espeak-ng's English voices (a system package), rare words from their phones")
     s.add_argument("--list-size", type=int, default=None,
                    help="biasing-list entries written per utterance (default: the largest of list_sizes)")
     s.add_argument("--overwrite", action="store_true", help="replace a folder this command made before")

@@ -30,9 +30,24 @@ from tinyrnnt.synth.corpus import (CHUNK, CONFUSABLE_SPLITS, LIST_SPLITS, SPLITS
                                    _lists, make_text)
 
 
+class FormantVoice:
+    """The built-in voice: `tinyrnnt.audio.formant` with the feature renderer's speakers and timing."""
+
+    def __init__(self, cfg: CorpusConfig, speakers, inventory):
+        self.renderer = WaveRenderer(cfg.acoustics, speakers)
+        self.sample_rate = cfg.acoustics.sample_rate
+
+    def render(self, sentences, speaker_ids, rng) -> list[np.ndarray]:
+        return self.renderer.render([s.phones for s in sentences], speaker_ids, rng)
+
+
 def speak_corpus(cfg: CorpusConfig, out_dir: str | Path, list_size: int | None = None, overwrite: bool = False,
-                 quiet: bool = False) -> dict:
-    """Write the manifest folder; returns {"utterances", "audio_seconds", "render_seconds", "folder"}."""
+                 quiet: bool = False, voice=FormantVoice) -> dict:
+    """Write the manifest folder; returns {"utterances", "audio_seconds", "render_seconds", "folder"}.
+
+    voice: a class made with (cfg, speakers, inventory) whose `render(sentences, speaker_ids, rng)`
+    gives int16 waveforms at its `sample_rate`; speaker ids index `speakers` (training ones first,
+    `cfg.train_speakers` of them, then the held-out ones)."""
     import soundfile as sf
 
     out_dir = Path(out_dir)
@@ -44,7 +59,7 @@ def speak_corpus(cfg: CorpusConfig, out_dir: str | Path, list_size: int | None =
     seeds = np.random.SeedSequence(cfg.seed).spawn(9)
     spk_rng = np.random.default_rng(seeds[5])
     speakers = make_speakers(cfg.train_speakers + cfg.heldout_speakers, spk_rng, cfg.acoustics)
-    renderer = WaveRenderer(cfg.acoustics, speakers)
+    renderer = voice(cfg, speakers, inventory)
     index = {rw.word: i for i, rw in enumerate(inventory)}
     out_dir.parent.mkdir(parents=True, exist_ok=True)
     tmp = out_dir.parent / f".{out_dir.name}.partial-{os.getpid()}"
@@ -63,13 +78,13 @@ def speak_corpus(cfg: CorpusConfig, out_dir: str | Path, list_size: int | None =
             seeds_k = chunk_seeds[k].spawn((len(sents) + CHUNK - 1) // CHUNK)
             for c in range(0, len(sents), CHUNK):
                 t1 = time.perf_counter()
-                waves = renderer.render([s.phones for s in sents[c:c + CHUNK]], spk[c:c + CHUNK].tolist(),
+                waves = renderer.render(sents[c:c + CHUNK], spk[c:c + CHUNK].tolist(),
                                         np.random.default_rng(seeds_k[c // CHUNK]))
                 render_s += time.perf_counter() - t1
                 for i, w in enumerate(waves, c):
-                    sf.write(tmp / "wav" / split / f"{split}-{i:06d}.wav", w, cfg.acoustics.sample_rate,
+                    sf.write(tmp / "wav" / split / f"{split}-{i:06d}.wav", w, renderer.sample_rate,
                              subtype="PCM_16")
-                    audio_s += len(w) / cfg.acoustics.sample_rate
+                    audio_s += len(w) / renderer.sample_rate
             if not quiet:
                 print(f"{split}: {len(sents)} utterances ({time.perf_counter() - t0:.1f} s)", file=sys.stderr)
         list_rng = np.random.default_rng(seeds[6])
