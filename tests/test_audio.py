@@ -173,3 +173,23 @@ def test_the_command_reports_a_bad_line_in_one_error_line_or_skips_and_counts(tm
     assert "skipped 1 bad lines" in capsys.readouterr().out
     assert main(["audio-corpus", "--manifests", str(folder), "--out", str(tmp_path / "d"), "--quiet", "features.colour=red"]) == 2
     assert "unknown key 'features.colour'" in capsys.readouterr().err
+
+
+def test_a_recipe_pointed_at_the_manifests_uses_a_cache_made_once_inside_them(tmp_path):
+    import os
+
+    from tinyrnnt.experiment import load_experiment
+    from tinyrnnt.lab.recipes import ensure_corpus
+
+    folder = _corpus_folder(tmp_path)
+    cfg = load_experiment(None, [f"data.corpus={folder}"])
+    ensure_corpus(cfg, quiet=True)
+    card = folder / "features" / "card.json"
+    made = card.stat().st_mtime_ns
+    assert len(CorpusSplit(folder, "train")) == 12  # the manifest folder reads as its cached corpus
+    ensure_corpus(cfg, quiet=True)
+    assert card.stat().st_mtime_ns == made  # nothing changed: not rebuilt
+    later = made / 1e9 + 5
+    os.utime(folder / "test.jsonl", (later, later))  # a manifest changed: rebuilt
+    ensure_corpus(cfg, quiet=True)
+    assert card.stat().st_mtime_ns != made

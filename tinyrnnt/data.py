@@ -44,11 +44,27 @@ class DataConfig:
                 at_least_zero=("valid_subset",))
 
 
+CACHE = "features"  # the corpus folder made inside a folder of audio manifests (tinyrnnt.audio.corpus)
+
+
+def corpus_folder(path: str | Path) -> Path:
+    """The corpus folder `path` names: itself, or for a folder of audio manifests, the corpus
+    folder cached inside it.
+
+    >>> str(corpus_folder("corpora/default"))
+    'corpora/default'
+    """
+    path = Path(path)
+    if not (path / "card.json").is_file() and (path / CACHE / "card.json").is_file():
+        return path / CACHE
+    return path
+
+
 class CorpusSplit(torch.utils.data.Dataset):
     """One split of a corpus folder: manifest, memory-mapped frames, biasing lists."""
 
     def __init__(self, folder: str | Path, split: str, limit: int | None = None):
-        folder = Path(folder)
+        folder = corpus_folder(folder)
         card_path = folder / "card.json"
         if not card_path.is_file():
             raise CorpusError(f"{folder}: no corpus here (card.json missing); build one with `tinyrnnt corpus`")

@@ -4,7 +4,9 @@ The corpus folder is the feature cache: every audio file is read once, here;
 training, decoding and scoring read only the corpus folder (uint8 log-mel
 shards, manifests, lists; layout in `tinyrnnt.synth.corpus`), so every recipe
 and command works on recorded speech unchanged with `data.corpus=` pointing at
-it. Normalisation is per corpus: the card's per-bin mean and deviation come
+it, or at the manifest folder itself (the corpus folder is then made, and
+remade when a manifest changes, in its `features/` subfolder:
+`refresh_cache`). Normalisation is per corpus: the card's per-bin mean and deviation come
 from this corpus's train split (all its splits when it has none).
 
 Rare words and lists: a manifest folder may hold `inventory.tsv` (the columns
@@ -60,6 +62,34 @@ def audio_corpus_config(settings=()) -> AudioCorpusConfig:
     from tinyrnnt import config as C
 
     return C.apply_overrides(AudioCorpusConfig(), list(settings))
+
+
+def is_manifest_folder(path: str | Path) -> bool:
+    """A folder of audio manifests (`<split>.jsonl` holding "audio" fields), not a corpus folder."""
+    path = Path(path)
+    if (path / "card.json").is_file() or not path.is_dir():
+        return False
+    first = next(iter(sorted(path.glob("*.jsonl"))), None)
+    if first is None:
+        return False
+    with open(first, encoding="utf-8") as f:
+        line = next((ln for ln in f if ln.strip()), "")
+    return '"audio"' in line
+
+
+def refresh_cache(manifests: str | Path, cfg: AudioCorpusConfig | None = None, quiet: bool = False) -> Path:
+    """The corpus folder cached inside a manifest folder (`features/`), built when missing or
+    older than a manifest; returns it."""
+    from tinyrnnt.data import CACHE
+
+    manifests = Path(manifests)
+    cache = manifests / CACHE
+    card = cache / "card.json"
+    newest = max(p.stat().st_mtime for p in manifests.glob("*.jsonl"))
+    if not card.is_file() or card.stat().st_mtime < newest:
+        _progress(f"{manifests}: making the feature cache {cache}", quiet)
+        build_audio_corpus(manifests, cache, cfg, overwrite=card.is_file(), quiet=quiet)
+    return cache
 
 
 def _progress(msg: str, quiet: bool) -> None:
