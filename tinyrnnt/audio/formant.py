@@ -8,9 +8,9 @@ cascade of five formant resonators; frication and bursts are noise shaped on
 a parallel branch and added at the output. Each resonator is Klatt's
 second-order section y[n] = A x[n] + B y[n-1] + C y[n-2] with
 C = -exp(-2 pi BW T), B = 2 exp(-pi BW T) cos(2 pi F T), A = 1 - B - C
-(gain 1 at 0 Hz), its antiresonator the inverse FIR. As in Klatt's program,
-parameters change every 5 ms; the resonators keep their past outputs across
-a change.
+(gain 1 at 0 Hz), its antiresonator the inverse FIR. Parameters change every
+5 ms, as in Klatt's program (from memory); the resonators keep their past
+outputs across a change.
 
 Everything the feature renderer draws is drawn the same way here
 (`tinyrnnt.synth.acoustics`): its duration model and timeline (the same
@@ -37,7 +37,7 @@ from tinyrnnt.synth.acoustics import (GRID_HZ, AcousticConfig, Renderer, Speaker
                                       _resonances)
 from tinyrnnt.synth.phonetics import WOMEN_VOCAL_TRACT
 
-BLOCK_MS = 5.0  # parameter update interval (Klatt 1980 updates every 5 ms)
+BLOCK_MS = 5.0  # parameter update interval (Klatt 1980's, from memory)
 NEUTRAL = np.array([*ph.NEUTRAL_FORMANTS, *ph.HIGH_FORMANTS])  # cascade settings where a part has none
 ZERO_BW = 100.0  # antiresonance bandwidth, as the feature renderer's
 SPEECH_DBFS = -23.0  # RMS of speech frames before the speaker's loudness and the utterance's gain

@@ -5,7 +5,7 @@ writes a manifest folder (`tinyrnnt.audio.manifest`): `wav/<split>/<id>.wav`,
 one `<split>.jsonl` per split and the corpus's `inventory.tsv`. Sentences,
 speakers, their assignment to utterances, durations and biasing lists are the
 feature corpus's of the same settings: the same seeds drawn in the same order
-(`tinyrnnt.synth.corpus.build_corpus`), so `tinyrnnt audio-corpus` on this
+(`tinyrnnt.synth.corpus.build_corpus`), so `tinyrnnt audio-corpus --manifests` on this
 folder gives a corpus with the feature corpus's splits, exposures, lists and
 ids, its frames made from audio instead.
 
