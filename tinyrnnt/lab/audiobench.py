@@ -215,8 +215,9 @@ def run_audio_bench(args) -> dict:
             outside = outside_voice(args, work)
         else:
             outside = {k: None for k in OUTSIDE_VOICE_KEYS}
-            outside["outside_voice_reason"] = ("not run: pass --outside-voice (espeak-ng corpus + the trie recipe, "
-                                               "about an hour on 2 idle cores)" if espeak else
+            outside["outside_voice_reason"] = ("not run: pass --outside-voice (speaks the default corpus with "
+                                               "espeak-ng, then the trie recipe, itself about 20 min on 2 idle "
+                                               "cores)" if espeak else
                                                "espeak-ng is not installed (apt-get install espeak-ng)")
         result = {
             "render_x_realtime_1core": round(render_x, 1),
