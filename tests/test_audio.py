@@ -85,6 +85,7 @@ def test_a_manifest_folder_becomes_a_corpus_every_command_reads(tmp_path):
     folder = _corpus_folder(tmp_path)
     card = build_audio_corpus(folder, tmp_path / "corpus", AudioCorpusConfig(list_size=3), quiet=True)
     assert card["splits"]["train"]["utterances"] == 12 and card["skipped_lines"] == 0
+    assert card["splits"]["test"]["lists"] == {"max": 3} and "lists" not in card["splits"]["train"]
     split = CorpusSplit(tmp_path / "corpus", "test")
     # the stored frames are the log-mel of the file, quantised to 0.1 (the synthetic corpus's step)
     wave, _ = sf.read(folder / "wav" / "test0.wav", dtype="float32")

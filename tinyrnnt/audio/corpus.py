@@ -133,15 +133,21 @@ def build_audio_corpus(manifests: str | Path, out_dir: str | Path, cfg: AudioCor
             splits[split] = kept
         index = {row["word"]: i for i, row in enumerate(inventory)}
         rng = np.random.default_rng(cfg.seed)
+        longest = {}
         for split, lines in splits.items():
             rows = _lists(split, lines, inventory, index, cfg.list_size, rng)
             if rows is not None:
                 np.save(tmp / f"{split}.lists.npy", rows)
+                # the longest list an utterance offers: its own rare words and the row's entries
+                longest[split] = int(max(len({sp["word"] for sp in ln.spans}) + int((r != NO_ENTRY).sum())
+                                         for ln, r in zip(lines, rows)))
         with open(tmp / "inventory.tsv", "w", encoding="utf-8") as f:
             f.write("\t".join(INVENTORY_COLUMNS) + "\n")
             for i, row in enumerate(inventory):
                 f.write("\t".join(str(i) if c == "index" else str(row[c]) for c in INVENTORY_COLUMNS) + "\n")
         card = _card(manifests, cfg, splits, stats, inventory, skipped)
+        for split, n in longest.items():  # what recipes check list sizes against
+            card["splits"][split]["lists"] = {"max": n}
         card["size_mb"] = round(sum(p.stat().st_size for p in tmp.iterdir()) / 1e6, 1)
         seconds = round(time.perf_counter() - t0, 2)
         (tmp / "card.json").write_text(json.dumps(card, indent=1) + "\n", encoding="utf-8")
