@@ -265,6 +265,24 @@ def _lists(split, lines, inventory, index, list_size, rng) -> np.ndarray | None:
     return out
 
 
+def _homophone_share(inventory: list[dict]) -> float | None:
+    """As `synth.card.homophone_share`, from inventory rows; None when no row gives phones.
+
+    >>> _homophone_share([{"word": "kal", "class": "invented_name", "exposure": "unseen_test", "phones": "K AE1 L"},
+    ...                   {"word": "cal", "class": "invented_name", "exposure": "frequent", "phones": "K AE1 L"},
+    ...                   {"word": "orm", "class": "invented_name", "exposure": "frequent", "phones": "AO1 R M"}])
+    0.6667
+    """
+    spellings: dict[str, set] = {}
+    for r in inventory:
+        if r["phones"]:
+            spellings.setdefault(r["phones"], set()).add(r["word"])
+    names = [r for r in inventory if r["class"] == "invented_name" and r["exposure"] != "soundalike" and r["phones"]]
+    if not names:
+        return None
+    return round(sum(len(spellings[r["phones"]]) >= 2 for r in names) / len(names), 4)
+
+
 def _card(folder: Path, cfg: AudioCorpusConfig, splits, stats, inventory, skipped) -> dict:
     """The synthetic corpus card's fields that apply to recorded speech, plus what was skipped."""
     basis = [s for s in stats if s == "train"] or list(stats)
@@ -272,6 +290,7 @@ def _card(folder: Path, cfg: AudioCorpusConfig, splits, stats, inventory, skippe
     mean = sum(stats[s]["sum"] for s in basis) / n
     std = np.sqrt(np.maximum(sum(stats[s]["sum_sq"] for s in basis) / n - mean ** 2, 1e-8))
     hop_s = cfg.features.hop_ms / 1000
+    train_uses = Counter(sp["word"] for ln in splits.get("train", []) for sp in ln.spans)
     card = {
         "scenario": f"audio:{folder.name}", "seed": cfg.seed, "source": "audio manifests",
         "size_mb": 0.0,
@@ -281,10 +300,11 @@ def _card(folder: Path, cfg: AudioCorpusConfig, splits, stats, inventory, skippe
         "inventory": {
             "rare_words": len(inventory),
             "invented_names": sum(r["class"] == "invented_name" for r in inventory),
-            "name_homophone_share": 0.0,
+            "name_homophone_share": _homophone_share(inventory),
             "by_class_and_exposure": dict(sorted(Counter(f"{r['class']}/{r['exposure']}" for r in inventory).items())),
             "name_styles": {}, "heldout_name_styles": [],
-            "few_shot_train_uses": {},
+            "few_shot_train_uses": dict(sorted(Counter(
+                train_uses[r["word"]] for r in inventory if r["exposure"] == "few_shot").items())),
         },
         "splits": {},
         "skipped_lines": len(skipped),
