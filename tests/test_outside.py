@@ -87,3 +87,13 @@ def test_the_outside_voice_corpus_has_the_built_in_corpus_utterances_and_lists(t
     a, f = CorpusSplit(tmp_path / "corpus", "test_unseen"), CorpusSplit(tmp_path / "features", "test_unseen")
     assert [(x["id"], x["text"], x["spans"]) for x in a.items] == [(x["id"], x["text"], x["spans"]) for x in f.items]
     assert all(a.biasing_list(i, 10) == f.biasing_list(i, 10) for i in range(len(a)))
+
+
+def test_the_command_without_espeak_is_one_error_line_saying_how_to_install(tmp_path, monkeypatch, capsys):
+    from tinyrnnt.cli import main
+
+    monkeypatch.setattr(shutil, "which", lambda name: None)
+    assert main(["speak", "--voice", "espeak", "--out", str(tmp_path / "x"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: espeak-ng is not installed") and "apt-get install" in err[0]
+    assert not (tmp_path / "x").exists()
