@@ -7,6 +7,8 @@
     fusion   beam search and shallow-fusion boosting (tuned on valid), alone and with the trie cue;
              after-trigger boosting, RTF, and our beam search against torchaudio's RNNTBeamSearch
     faults   the bad-input catalogue, a killed-and-resumed training, a 100,000-entry list, a wheel install
+    audio    formant-synthesizer and feature speed on one core, the feature cache (no audio read while
+             training), 2-process distributed training agreeing on weights, the outside-voice corpus
 
 Each builds what it needs (corpus, checkpoints) when missing. Rates are
 fractions, times in seconds unless the key says ms.
@@ -135,10 +137,16 @@ def bench_faults(args) -> dict:
     return run_fault_bench(args)
 
 
+def bench_audio(args) -> dict:
+    from tinyrnnt.lab.audiobench import run_audio_bench
+
+    return run_audio_bench(args)
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python -m tinyrnnt.bench", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("name", choices=["corpus", "train", "trie", "fusion", "faults"])
+    p.add_argument("name", choices=["corpus", "train", "trie", "fusion", "faults", "audio"])
     p.add_argument("--corpus", default="corpora/default", help="default corpus folder (built when missing)")
     p.add_argument("--rebuild", action="store_true", help="corpus: rebuild the default corpus to time it")
     p.add_argument("--minutes", type=float, default=None,
@@ -157,12 +165,22 @@ def main(argv=None) -> int:
                    help="fusion: 4 boost weights and N = 100 only (a short look; not the quoted figures)")
     p.add_argument("--reference-utts", type=int, default=200,
                    help="fusion: utterances decoded by both our beam search and torchaudio's (default 200)")
+    p.add_argument("--utts", type=int, default=200,
+                   help="audio: utterances rendered and read for the speed figures (default 200, ~7 min of audio)")
+    p.add_argument("--work", default=None,
+                   help="audio: keep the WAVs, spoken corpus and runs in this folder (default: a temporary one)")
+    p.add_argument("--outside-voice", action="store_true",
+                   help="audio: also build the espeak-ng corpus and run the trie recipe on it (kept in --work, "
+                        "default runs/bench-audio; resumable)")
+    p.add_argument("--outside-preset", default=None, help="audio: corpus preset of the espeak-ng corpus (e.g. small)")
+    p.add_argument("--outside-settings", nargs="*", default=[],
+                   help="audio: recipe settings for the outside-voice run, e.g. train.steps=50 (a quick look)")
     args = p.parse_args(argv)
     args.run_dir = args.run_dir or f"runs/bench-{args.name}"
     if args.name == "train" and args.minutes is None:
         args.minutes = 10.0
     result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "fusion": bench_fusion,
-              "faults": bench_faults}[args.name](args)
+              "faults": bench_faults, "audio": bench_audio}[args.name](args)
     result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
     print(json.dumps(result))
     return 0

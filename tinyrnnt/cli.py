@@ -206,6 +206,9 @@ def build_parser() -> argparse.ArgumentParser:
     e.set_defaults(fn=_experiment)
 
     sub.add_parser("bench", help="run a benchmark, as python -m tinyrnnt.bench NAME (see tinyrnnt bench --help)")
+    from tinyrnnt.audio.commands import add_commands
+
+    add_commands(sub)  # speak, audio-corpus, export
     return p
 
 

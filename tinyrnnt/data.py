@@ -22,6 +22,9 @@ import torch
 from tinyrnnt.text import encode
 
 
+NO_LIST_ENTRY = 65535  # padding in a <split>.lists.npy row: no more entries
+
+
 class CorpusError(ValueError):
     """A corpus folder is missing or damaged."""
 
@@ -41,11 +44,27 @@ class DataConfig:
                 at_least_zero=("valid_subset",))
 
 
+CACHE = "features"  # the corpus folder made inside a folder of audio manifests (tinyrnnt.audio.corpus)
+
+
+def corpus_folder(path: str | Path) -> Path:
+    """The corpus folder `path` names: itself, or for a folder of audio manifests, the corpus
+    folder cached inside it.
+
+    >>> str(corpus_folder("corpora/default"))
+    'corpora/default'
+    """
+    path = Path(path)
+    if not (path / "card.json").is_file() and (path / CACHE / "card.json").is_file():
+        return path / CACHE
+    return path
+
+
 class CorpusSplit(torch.utils.data.Dataset):
     """One split of a corpus folder: manifest, memory-mapped frames, biasing lists."""
 
     def __init__(self, folder: str | Path, split: str, limit: int | None = None):
-        folder = Path(folder)
+        folder = corpus_folder(folder)
         card_path = folder / "card.json"
         if not card_path.is_file():
             raise CorpusError(f"{folder}: no corpus here (card.json missing); build one with `tinyrnnt corpus`")
@@ -137,7 +156,8 @@ class CorpusSplit(torch.utils.data.Dataset):
             raise CorpusError(f"list size {size} exceeds this corpus's largest lists ({rows.shape[1]})")
         own = list(dict.fromkeys(sp["word"] for sp in self.items[i]["spans"]))
         inv = self.inventory()
-        return own + [inv[int(j)]["word"] for j in rows[i][: max(size - len(own), 0)]]
+        # subtle: lists of recorded corpora differ in length; NO_LIST_ENTRY pads the shorter rows
+        return own + [inv[int(j)]["word"] for j in rows[i][: max(size - len(own), 0)] if j != NO_LIST_ENTRY]
 
 
 def _load_array(path: Path) -> np.ndarray:
@@ -150,11 +170,34 @@ def _load_array(path: Path) -> np.ndarray:
         raise CorpusError(f"{path}: damaged or truncated ({err}); rebuild the corpus") from None
 
 
+def rank_and_world() -> tuple[int, int]:
+    """(this process's rank, number of processes) of distributed training; (0, 1) without it."""
+    dist = torch.distributed
+    if dist.is_available() and dist.is_initialized():
+        return dist.get_rank(), dist.get_world_size()
+    return 0, 1
+
+
+def shard(batches: list, rank: int, world: int) -> list:
+    """This rank's share of an epoch's batches: every world-th batch from its rank on, after the
+    list is topped up with its first batches to a multiple of the world size.
+
+    >>> [shard([[0], [1], [2]], r, 2) for r in (0, 1)]  # both ranks take two steps
+    [[[0], [2]], [[1], [0]]]
+    """
+    # subtle: all ranks must take the same number of steps (each step's gradient all-reduce waits
+    # for every rank), so a short last round repeats batches instead of leaving a rank idle
+    n = -(-len(batches) // world) * world
+    return (batches + batches[: n - len(batches)])[rank::world]
+
+
 class LengthBuckets(torch.utils.data.Sampler):
     """Batches of similar length: sort within random buckets, shuffle batch order.
 
     The batches of an epoch depend only on (seed, epoch), never on what was drawn before, so a
-    resumed run picks up exactly where an interrupted one stopped (`start_at`).
+    resumed run picks up exactly where an interrupted one stopped (`start_at`). Under distributed
+    training every process makes the same list and takes its own share (`shard`); batches done
+    count per process.
     """
 
     def __init__(self, lengths: np.ndarray, batch_size: int, bucket_batches: int, shuffle: bool, seed: int = 0):
@@ -188,12 +231,16 @@ class LengthBuckets(torch.utils.data.Sampler):
 
     def __iter__(self):
         self.current_epoch = self.epoch
-        batches = self.batches(self.epoch)[self._skip:]
+        batches = shard(self.batches(self.epoch), *rank_and_world())[self._skip:]
         self.epoch, self._skip = self.epoch + 1, 0
         return iter(batches)
 
     def __len__(self) -> int:
-        return (len(self.lengths) + self.batch_size - 1) // self.batch_size
+        """Batches per epoch of this process. The trainer ends an epoch after this many, so it stays
+        the count of full-size batches it always was (an epoch's last bucket remainders are not
+        reached); under distributed training, each process's share of it."""
+        full = (len(self.lengths) + self.batch_size - 1) // self.batch_size
+        return -(-full // rank_and_world()[1])
 
 
 def collate(items: list[dict]) -> dict:

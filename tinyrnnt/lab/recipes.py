@@ -255,6 +255,11 @@ def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False, build: bool = Fals
     from tinyrnnt.synth.card import format_card
     from tinyrnnt.synth.corpus import build_corpus
 
+    from tinyrnnt.audio.corpus import is_manifest_folder, refresh_cache
+
+    if is_manifest_folder(cfg.data.corpus):  # audio manifests: their corpus folder is cached inside
+        refresh_cache(cfg.data.corpus, quiet=quiet)
+        return
     if not (Path(cfg.data.corpus) / "card.json").is_file():
         if not build and Path(cfg.data.corpus) != Path(DataConfig().corpus):
             raise CorpusError(f"{cfg.data.corpus}: no corpus here (no card.json); check data.corpus, or build "
@@ -371,7 +376,9 @@ def check_plan(plan: EvalPlan, corpus: str) -> None:
     """Splits and list sizes of the evaluation plan exist in the corpus: checked before training."""
     import json
 
-    card = json.loads((Path(corpus) / "card.json").read_text(encoding="utf-8"))
+    from tinyrnnt.data import corpus_folder
+
+    card = json.loads((corpus_folder(corpus) / "card.json").read_text(encoding="utf-8"))
     splits = sorted(card["splits"])
     missing = [s for s in plan.splits if s not in card["splits"]]
     if missing:

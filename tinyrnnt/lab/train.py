@@ -45,9 +45,9 @@ class TrainResult:
     clock: object = None  # the TrainingClock: utterances, frames, flops counted
 
 
-def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> TrainResult:
-    """Train one model. Everything that can be checked is checked before anything is written:
-    the budget, the corpus, the model against `init_from` or the checkpoint to resume, the Trainer
+def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False, callbacks=()) -> TrainResult:
+    """Train one model (`callbacks`: more Lightning callbacks, e.g. for checks). Everything that can
+    be checked is checked before anything is written: the budget, the corpus, the model against `init_from` or the checkpoint to resume, the Trainer
     settings. A run that fails before its first checkpoint leaves no run folder behind."""
     import lightning as L
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
@@ -103,7 +103,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
     clock = TrainingClock(cfg.train.minutes, cfg.train.snapshot_minutes)
     best = ModelCheckpoint(dirpath=ckpt_dir, filename="best", monitor="valid_cer", mode="min", save_last=True,
                            enable_version_counter=False)
-    callbacks = [clock, best, ExactResume(train_dl.batch_sampler)]
+    callbacks = [clock, best, ExactResume(train_dl.batch_sampler), *callbacks]
     if cfg.train.early_stop_patience:
         callbacks.append(EarlyStopping(monitor="valid_cer", mode="min", patience=cfg.train.early_stop_patience))
     trainer_args = dict(max_epochs=cfg.train.max_epochs, max_steps=cfg.train.steps or -1,
@@ -111,7 +111,10 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False) -> T
                         check_val_every_n_epoch=None, gradient_clip_val=cfg.train.grad_clip,
                         logger=CSVLogger(run, name="logs"), callbacks=callbacks, enable_progress_bar=not quiet,
                         enable_model_summary=not quiet, num_sanity_val_steps=0, accelerator="cpu",
-                        log_every_n_steps=20, plugins=[AtomicCheckpoints()])
+                        log_every_n_steps=20, plugins=[AtomicCheckpoints()],
+                        # our length buckets give each process its share under distributed training
+                        # (data.shard); Lightning's own sampler would undo the bucketing
+                        use_distributed_sampler=False)
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
     try:
         trainer = L.Trainer(**trainer_args)

@@ -43,9 +43,10 @@ class TransducerTask(L.LightningModule):
         out = self.model.losses(feats, batch["feat_lens"], batch["targets"], batch["target_lens"],
                                 batch.get("lists"), implementation=self.cfg.train.loss_implementation)
         B = len(batch["ids"])
-        self.log(f"{stage}_loss", out["rnnt"], prog_bar=True, batch_size=B)
+        # validation figures are averaged over processes under distributed training (each sees its share)
+        self.log(f"{stage}_loss", out["rnnt"], prog_bar=True, batch_size=B, sync_dist=stage == "valid")
         if "ctc" in out:
-            self.log(f"{stage}_ctc", out["ctc"], batch_size=B)
+            self.log(f"{stage}_ctc", out["ctc"], batch_size=B, sync_dist=stage == "valid")
         return out["loss"]
 
     def training_step(self, batch, batch_idx):
@@ -63,7 +64,7 @@ class TransducerTask(L.LightningModule):
         hyps = greedy_decode(self.model, batch["feats"], batch["feat_lens"], biaser=biaser)
         errs = sum(cer(r, decode(h)) * len(r) for r, h in zip(batch["texts"], hyps))
         chars = sum(len(r) for r in batch["texts"])
-        self.log("valid_cer", errs / max(chars, 1), prog_bar=True, batch_size=chars, reduce_fx="mean")
+        self.log("valid_cer", errs / max(chars, 1), prog_bar=True, batch_size=chars, reduce_fx="mean", sync_dist=True)
         return loss
 
     def configure_optimizers(self):

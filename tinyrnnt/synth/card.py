@@ -104,7 +104,7 @@ def format_card(card: dict) -> str:
         f"scenario {card['scenario']}  seed {card['seed']}  size {card['size_mb']} MB"
         + (f"  built in {card['build_seconds']} s" if "build_seconds" in card else ""),
         f"rare words {inv['rare_words']} (invented names {inv['invented_names']}, "
-        f"share sharing their sound with another spelling {inv['name_homophone_share']:.3f})",
+        f"share sharing their sound with another spelling {_share(inv['name_homophone_share'])})",
         f"training common vocabulary {card['train_common_vocabulary']} words; "
         f"few-shot uses in training {inv['few_shot_train_uses']}",
         "inventory by class/exposure: " + ", ".join(f"{k} {v}" for k, v in inv["by_class_and_exposure"].items()),
@@ -116,6 +116,11 @@ def format_card(card: dict) -> str:
     if card.get("user_words"):
         lines.append(user_words_line(card["user_words"]))
     return "\n".join(lines)
+
+
+def _share(x) -> str:
+    """A share for the printed card; corpora made from audio may not know it (None)."""
+    return "unknown" if x is None else f"{x:.3f}"
 
 
 def user_words_line(words: dict) -> str:
