@@ -171,3 +171,19 @@ def test_the_page_opens_from_disk_in_headless_chromium_with_every_image_loaded(r
     ink = (pixels < 0.9).any(axis=-1).mean()  # share of pixels that are not near-white
     colours = len({tuple(p) for p in (pixels[::7, ::7] * 255).astype(int).reshape(-1, 3).tolist()})
     assert ink > 0.02 and colours > 20, (ink, colours)  # text, tables and plots drawn, not a blank page
+
+
+def test_decoding_shows_a_progress_bar_with_the_time_left_and_is_silent_when_asked(results, capsys):
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.lab.evaluate import evaluate
+    from tinyrnnt.lab.train import load_model
+
+    model, cfg, _ = load_model(results / "trie" / "checkpoints" / "last.ckpt")
+    split = CorpusSplit(cfg.data.corpus, "test_unseen")
+    evaluate(model, split, list_size=10, batch_size=4, progress="trie test_unseen N=10")
+    lines = [x for x in capsys.readouterr().err.replace("\r", "\n").splitlines() if x.strip()]
+    assert len(lines) == 4  # one update a batch: 16 utterances, 4 a batch
+    assert lines[0].startswith("  trie test_unseen N=10 [") and "4/16 utterances" in lines[0] and "left" in lines[0]
+    assert "16/16 utterances" in lines[-1] and lines[-1].endswith("done")
+    evaluate(model, split, list_size=10, batch_size=4)
+    assert capsys.readouterr().err == ""
