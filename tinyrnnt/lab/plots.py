@@ -6,7 +6,6 @@ returns the path it wrote; none of them reads files or computes statistics.
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
 
 RATE_LABELS = {"bwer": "B-WER (errors on biased words)", "uwer": "U-WER (errors on other words)"}
@@ -60,7 +59,10 @@ def rates_against_list_size(points: list[dict], title: str, path: Path) -> Path:
         ax.set_xlabel("biasing list size N")
         ax.set_ylabel(RATE_LABELS[rate])
         ax.grid(alpha=0.3)
-    axes[0].legend(fontsize=8)
+    for ax in axes:
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize=8)
+            break
     fig.suptitle(title)
     fig.tight_layout()
     return save_png(fig, path)
@@ -86,7 +88,8 @@ def training_curves(curves: list[dict], path: Path) -> Path:
         ax.set_xlabel("optimiser steps behind the model")
         ax.set_ylabel(ylabel)
         ax.grid(alpha=0.3)
-        ax.legend(fontsize=7)
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize=7)
     fig.tight_layout()
     return save_png(fig, path)
 
@@ -115,11 +118,3 @@ def boost_curves(curves: list[dict], variant: str, path: Path) -> Path:
     fig.tight_layout()
     return save_png(fig, path)
 
-
-def finite(v) -> bool:
-    """True for a number that is not NaN or infinite.
-
-    >>> finite(0.5), finite(None), finite(float("nan"))
-    (True, False, False)
-    """
-    return isinstance(v, (int, float)) and math.isfinite(v)

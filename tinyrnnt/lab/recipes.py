@@ -391,9 +391,10 @@ def check_room(recipe: Recipe, arms: dict[str, Arm]) -> None:
     check_output_folder(Path(recipe.out_dir) / recipe.name, need + MB, "results folder")
 
 
-def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False) -> list[dict]:
-    """Corpus if needed, train every arm, evaluate, write the tables. With resume, finished arms
-    and finished evaluations (same config, same checkpoint) are kept, not recomputed."""
+def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False, report: bool = True) -> list[dict]:
+    """Corpus if needed, train every arm, evaluate, write the tables and render the report
+    (tinyrnnt.lab.report). With resume, finished arms and finished evaluations (same config, same
+    checkpoint) are kept, not recomputed."""
     from tinyrnnt.lab.tables import evaluate_arms, write_tables
 
     recipe, overrides = split_overrides(read_recipe(path), list(overrides))
@@ -410,4 +411,10 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
     results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
     print(tables["markdown"])
+    if report:
+        from tinyrnnt.lab.report import make_report
+
+        made = make_report(Path(recipe.out_dir) / recipe.name)
+        print("## Headline\n\n" + "\n".join(f"- {s}" for s in made["headline_text"]))
+        print(f"\nreport: {made['html']} (one file, opens in any browser); summary: {made['markdown']}")
     return tables["rows"]
