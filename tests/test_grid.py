@@ -14,6 +14,7 @@ from test_cli import TINY  # the same tiny corpus settings as the CLI tests
 from tinyrnnt.config import ConfigError
 from tinyrnnt.lab.grid import read_lines, run_grid
 from tinyrnnt.lab.recipes import read_recipe, run_recipe
+from tinyrnnt.lab.report import make_report
 from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -71,6 +72,13 @@ def test_a_grid_runs_every_cell_once_and_a_second_run_recomputes_nothing(corpus,
     cmp = json.loads((folder / "grid_comparisons.json").read_text())
     assert {(c["cell"].split(",")[0], c["against"].split(",")[0]) for c in cmp} == {("biasing=trie", "biasing=none")}
     assert len(cmp) == 4 * 3 and all("interval" in c["verdict"] or "no rate" in c["verdict"] for c in cmp)
+    made = make_report(folder)  # the report reads a grid folder too: a system is a cell but its list size
+    head = made["headline"]
+    assert {(h["system"], h["against"]) for h in head} == {
+        ("biasing=trie, fusion=plain", "biasing=none, fusion=plain"),
+        ("biasing=trie, fusion=boosted", "biasing=none, fusion=boosted")}
+    assert {h["list_size"] for h in head} == {10} and (folder / "report" / "rates.grid.test_unseen.png").is_file()
+    assert "reference cell" in made["html"].read_text()
     before = (folder / "grid.jsonl").read_bytes()
     again = run_grid(recipe, quiet=True)
     assert (again["evaluated"], again["kept"], again["trained"]) == (0, 8, 0)

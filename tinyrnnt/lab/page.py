@@ -24,7 +24,8 @@ LABELS = {"run": "system", "system": "system", "seed": "training seed", "decodin
           "high": "interval high", "p_improvement": "probability of improvement", "verdict": "in words",
           "seeds": "seeds", "words": "words of", "biased_words": "biased words",
           "bwer_low": "B-WER low", "bwer_high": "B-WER high", "uwer_low": "U-WER low", "uwer_high": "U-WER high"}
-ROLES = {"control": "its equal-steps control", "start": "the run it started from"}
+ROLES = {"control": "its equal-steps control", "start": "the run it started from",
+         "reference": "the grid's reference cell"}
 RATES = {"wer": "WER", "uwer": "U-WER", "bwer": "B-WER"}
 
 
@@ -56,9 +57,9 @@ def fmt(v) -> str:
 
 
 def headline_rows(data: dict) -> list[dict]:
-    """B-WER of each biased arm against its equal-steps control (from comparisons.json); with no
-    comparisons, every arm's WER, U-WER and B-WER."""
-    cmp = [c for c in data["comparisons"] or [] if c["role"] == "control" and c["metric"] == "bwer"]
+    """B-WER of each biased arm against its equal-steps control (from comparisons.json; in a grid,
+    each cell against its reference cell); with no comparisons, every arm's WER, U-WER and B-WER."""
+    cmp = [c for c in data["comparisons"] or [] if c["role"] in ("control", "reference") and c["metric"] == "bwer"]
     if cmp:
         keys = ("system", "against", "seed", "decoding", "split", "list_size", "steps", "against_steps", "value",
                 "against_value", "delta", "low", "high", "p_improvement", "verdict")
@@ -76,7 +77,8 @@ def headline_text(data: dict) -> list[str]:
             out.append(f"{r['system']} against {r['against']}, {r['split']}, N = {r['list_size']}, {r['decoding']}: "
                        "no biased words, no B-WER")
             continue
-        out.append(f"{r['system']} against {r['against']} (equal steps: {r['steps']:,} and {r['against_steps']:,}), "
+        steps = "equal steps" if r["steps"] == r["against_steps"] else "steps"
+        out.append(f"{r['system']} against {r['against']} ({steps}: {r['steps']:,} and {r['against_steps']:,}), "
                    f"{r['split']}, N = {r['list_size']}, {r['decoding']} decoding, seed {r['seed']}: B-WER "
                    f"{r['value']:.3f} against {r['against_value']:.3f}, difference {r['delta']:+.3f} "
                    f"(95 % interval {r['low']:+.3f} to {r['high']:+.3f}): {r['verdict']}; probability of "
@@ -93,7 +95,8 @@ def sections(data: dict) -> list[tuple[str, str, list[dict] | None, str | None]]
             "bootstrap interval of each rate over utterances.", None, "rates")]
     out += [("Results", "Every evaluation: rates and the training behind each model (steps and seconds summed "
                        "through the runs it started from).", data["results"], None),
-           ("Differences against the control and the starting run",
+           ("Differences against the grid's reference cells" if any(c["role"] == "reference" for c in cmp or [])
+            else "Differences against the control and the starting run",
             "Paired bootstrap over utterances (1,000 resamples), 95 % interval of the system's rate minus the "
             "other's; a negative difference means fewer errors." if cmp else
             "No comparisons (comparisons.json absent or empty: no biased arm).", cmp or None, None)]

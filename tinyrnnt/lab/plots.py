@@ -55,6 +55,8 @@ def rates_against_list_size(points: list[dict], title: str, path: Path) -> Path:
             low = [max(p[rate] - _nan(p[f"{rate}_low"]), 0) for p in mine]
             high = [max(_nan(p[f"{rate}_high"]) - p[rate], 0) for p in mine]
             ax.errorbar(x, y, yerr=[low, high], marker="o", capsize=3, label=system)
+        if not ax.lines:
+            ax.text(0.5, 0.5, "no such words in this split", ha="center", va="center", transform=ax.transAxes)
         ax.set_xscale("symlog", linthresh=10)
         ax.set_xlabel("biasing list size N")
         ax.set_ylabel(RATE_LABELS[rate])

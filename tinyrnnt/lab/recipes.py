@@ -401,7 +401,10 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
     if recipe.grid:  # a grid runs its cells (finished ones are always kept) and writes grid tables
         from tinyrnnt.lab.grid import run_grid
 
-        return run_grid(recipe, overrides, quiet)["rows"]
+        rows = run_grid(recipe, overrides, quiet)["rows"]
+        if report:
+            _render(Path(recipe.out_dir) / recipe.name)
+        return rows
     arms = expand_arms(recipe, overrides)
     check_room(recipe, arms)
     for corpus_of in {arm.cfg.data.corpus: arm.cfg for arm in arms.values()}.values():  # each corpus once
@@ -412,9 +415,14 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
     print(tables["markdown"])
     if report:
-        from tinyrnnt.lab.report import make_report
-
-        made = make_report(Path(recipe.out_dir) / recipe.name)
-        print("## Headline\n\n" + "\n".join(f"- {s}" for s in made["headline_text"]))
-        print(f"\nreport: {made['html']} (one file, opens in any browser); summary: {made['markdown']}")
+        _render(Path(recipe.out_dir) / recipe.name)
     return tables["rows"]
+
+
+def _render(folder: Path) -> None:
+    """The report of a finished results folder; prints the headline and where the report is."""
+    from tinyrnnt.lab.report import make_report
+
+    made = make_report(folder)
+    print("## Headline\n\n" + "\n".join(f"- {s}" for s in made["headline_text"]))
+    print(f"\nreport: {made['html']} (one file, opens in any browser); summary: {made['markdown']}")

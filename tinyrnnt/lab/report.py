@@ -49,13 +49,17 @@ def _read_json(path: Path, what: str):
 def read_folder(folder: str | Path, out: Path | None = None) -> dict:
     """Everything the report shows, read from a results folder; errors name the file."""
     folder = Path(folder)
-    if not (folder / "results.json").is_file():
-        raise C.ConfigError(f"{folder}: no results.json here; expected a results folder written by "
-                            "`tinyrnnt experiment` (results.json, comparisons.json and run folders)")
-    data = {"folder": folder, "results": _read_json(folder / "results.json", "the results table")}
-    for name in ("comparisons", "seeds"):
-        path = folder / f"{name}.json"
-        data[name] = _read_json(path, f"the {name} table") if path.is_file() else None
+    if (folder / "results.json").is_file():
+        data = {"folder": folder, "results": _read_json(folder / "results.json", "the results table")}
+        for name in ("comparisons", "seeds"):
+            path = folder / f"{name}.json"
+            data[name] = _read_json(path, f"the {name} table") if path.is_file() else None
+    elif (folder / "grid.jsonl").is_file():
+        data = grid_tables(folder)
+    else:
+        raise C.ConfigError(f"{folder}: no results.json or grid.jsonl here; expected a results folder written by "
+                            "`tinyrnnt experiment` (results.json, comparisons.json and run folders, or a grid's "
+                            "grid.jsonl)")
     skip = out.resolve() if out is not None else None
     inside = lambda p: skip is not None and skip in p.resolve().parents  # noqa: E731  (the report's own files)
     runs = []
@@ -70,11 +74,48 @@ def read_folder(folder: str | Path, out: Path | None = None) -> dict:
             raise C.ConfigError(f"{marker}: expected config.name, config.train.seed, result.steps and "
                                 "result.history.steps") from None
     data["runs"] = runs
+    if "where" not in data:  # an experiment: each evaluation's files in its run folder
+        by_key = {(r.run, r.seed): r for r in runs}
+        data["where"] = {(w["run"], w["seed"], w["decoding"], w["split"], w["list_size"]):
+                         (by_key[(w["run"], w["seed"])].path / "results",
+                          result_name(w["decoding"], w["split"], w["list_size"]))
+                         for w in data["results"] if (w["run"], w["seed"]) in by_key}
     data["boost"] = [(r, p, _read_json(p, "a boost-weight curve")) for r in runs
                      for p in sorted((r.path / "results").glob("boost_curve.*.json"))]
     data["pictures"] = [p for p in sorted(folder.rglob("*.png")) if p.parent.name == "pictures" and not inside(p)]
     data["costs"] = [p for p in sorted(folder.rglob("cost*.csv")) if not inside(p)]
     return data
+
+
+def grid_tables(folder: Path) -> dict:
+    """A grid's lines as the report's tables: a system is a cell's labels but list size and seed;
+    comparisons are each cell against its reference cell (grid_comparisons.json)."""
+    from tinyrnnt.lab.grid import read_lines
+    from tinyrnnt.lab.tables import TABLE_KEYS, seed_rows
+
+    lines = read_lines(folder / "grid.jsonl")
+    axes = [part.split("=", 1)[0] for part in lines[0]["cell"].split(",")] if lines else []
+    system = lambda g: ", ".join(f"{a}={g[a]}" for a in axes if a not in ("list_size", "seed")) or "model"  # noqa: E731
+    rows, where, names = [], {}, {}
+    for g in lines:
+        row = {"run": system(g), "seed": int(g.get("seed", 0)), "decoding": "grid", "split": g["split"],
+               "list_size": int(g.get("list_size", 0)), "boost_weight": g.get("boost_weight"), "steps": g["steps"],
+               "train_s": g["train_s"], **{k: g.get(k) for k in TABLE_KEYS}}
+        rows.append(row)
+        key = (row["run"], row["seed"], "grid", row["split"], row["list_size"])
+        where[key], names[g["cell"]] = (Path(g["run_dir"]) / "results", g["hyps"]), row
+    cmp_path = folder / "grid_comparisons.json"
+    comparisons = []
+    for c in _read_json(cmp_path, "the grid comparisons") if cmp_path.is_file() else []:
+        mine, theirs = names.get(c["cell"]), names.get(c["against"])
+        if mine is not None and theirs is not None:
+            comparisons.append({"system": mine["run"], "against": theirs["run"], "role": "reference",
+                                "seed": mine["seed"], "decoding": "grid", "split": c["split"],
+                                "list_size": mine["list_size"],
+                                **{k: c[k] for k in ("metric", "steps", "against_steps", "value", "against_value",
+                                                     "delta", "low", "high", "p_improvement", "verdict")}})
+    return {"folder": folder, "results": rows, "comparisons": comparisons, "seeds": seed_rows(rows) or None,
+            "where": where}
 
 
 def result_name(decoding: str, split: str, n: int) -> str:
@@ -86,9 +127,15 @@ def result_name(decoding: str, split: str, n: int) -> str:
     return f"{split}.n{n}" if decoding == "greedy" else f"{decoding}.{split}.n{n}"
 
 
-def counts_of(run: RunFolder, decoding: str, split: str, n: int) -> dict | None:
+def loaded(data: dict, run: str, seed: int, decoding: str, split: str, n: int) -> tuple[list, dict] | None:
+    """One evaluation's records and summary, or None when it is not on disk."""
+    place = data["where"].get((run, seed, decoding, split, n))
+    return None if place is None else load_results(*place)
+
+
+def counts_of(data: dict, run: str, seed: int, decoding: str, split: str, n: int) -> dict | None:
     """Per-utterance error counts by utterance id, or None when that evaluation is not on disk."""
-    kept = load_results(run.path / "results", result_name(decoding, split, n))
+    kept = loaded(data, run, seed, decoding, split, n)
     return None if kept is None else {r["id"]: r["counts"] for r in kept[0]}
 
 
@@ -110,11 +157,9 @@ def rate_interval(counts: dict, rate: str, n_resamples: int = 1000) -> tuple[flo
 
 def rate_points(data: dict) -> list[dict]:
     """Rows of results.json with each B-WER and U-WER's own interval, from the run folders' hypotheses."""
-    by_key = {(r.run, r.seed): r for r in data["runs"]}
     points = []
     for row in data["results"]:
-        run = by_key.get((row["run"], row["seed"]))
-        counts = counts_of(run, row["decoding"], row["split"], row["list_size"]) if run else None
+        counts = counts_of(data, row["run"], row["seed"], row["decoding"], row["split"], row["list_size"])
         point = {k: row[k] for k in ("run", "seed", "decoding", "split", "list_size", "bwer", "uwer")}
         for rate in ("bwer", "uwer"):
             low, high = rate_interval(counts, rate) if counts and row[rate] is not None else (None, None)
@@ -129,16 +174,16 @@ def against_reference(data: dict, reference: str) -> list[dict]:
     from tinyrnnt.lab.tables import COMPARED, verdict
     from tinyrnnt.score import compare_systems
 
-    names = sorted({r.run for r in data["runs"]})
+    names = sorted({r["run"] for r in data["results"]})
     if reference not in names:
         raise C.ConfigError(f"--against {reference!r}: no such run in {data['folder']}; runs: {names}")
-    by_key = {(r.run, r.seed): r for r in data["runs"]}
     rows = []
     for row in data["results"]:
-        if row["run"] == reference or (reference, row["seed"]) not in by_key or (row["run"], row["seed"]) not in by_key:
+        if row["run"] == reference:
             continue
         where = (row["decoding"], row["split"], row["list_size"])
-        mine, theirs = counts_of(by_key[(row["run"], row["seed"])], *where), counts_of(by_key[(reference, row["seed"])], *where)
+        mine = counts_of(data, row["run"], row["seed"], *where)
+        theirs = counts_of(data, reference, row["seed"], *where)
         if mine is None or theirs is None:
             continue
         for rate in COMPARED:
@@ -154,10 +199,8 @@ def class_rows(data: dict) -> list[dict]:
     """B-WER by rare-word class and name style for every evaluation, from the runs' scores files."""
     rows = []
     for row in data["results"]:
-        for run in (r for r in data["runs"] if (r.run, r.seed) == (row["run"], row["seed"])):
-            kept = load_results(run.path / "results", result_name(row["decoding"], row["split"], row["list_size"]))
-            if kept is None:
-                continue
+        kept = loaded(data, row["run"], row["seed"], row["decoding"], row["split"], row["list_size"])
+        if kept is not None:
             parts = {k[len("bwer:"):]: v for k, v in kept[1].items() if k.startswith("bwer:") and v is not None}
             for part, value in sorted(parts.items()):
                 rows.append({"run": row["run"], "seed": row["seed"], "decoding": row["decoding"], "split": row["split"],
