@@ -135,3 +135,23 @@ def test_a_torn_last_line_is_dropped_and_bad_grids_are_named(corpus, tmp_path):
     bad.write_text(recipe.replace("axes:", "rows: 1\n  axes:"))
     with pytest.raises(ConfigError, match="unknown key 'rows'"):
         read_recipe(bad)
+
+
+@pytest.mark.parametrize("name", ["quickstart", "list_size_scaling", "boost_sweep", "trie_vs_baseline"])
+def test_shipped_recipes_read_and_expand(name):
+    from tinyrnnt.lab.grid import GridPlan, expand
+    from tinyrnnt.lab.recipes import expand_arms
+    from tinyrnnt.config import from_dict
+
+    recipe = read_recipe(name)
+    assert recipe.name == name
+    if recipe.grid:
+        plan = from_dict(GridPlan, recipe.grid, "grid")
+        cells, models = expand(recipe, plan)
+        assert len(models) == 2 and len(cells) == len(models) * len(plan.axes["list_size"]) * (
+            len(plan.axes.get("weight", {0: 0})))
+        assert plan.compare and all(c.labels for c in cells)
+    else:
+        arms = expand_arms(recipe)
+        assert {"baseline", "trie", "trie_control"} <= set(arms)
+        assert arms["trie"].cfg.train.steps == arms["trie_control"].cfg.train.steps
