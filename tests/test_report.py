@@ -112,6 +112,7 @@ def test_the_page_is_self_contained_and_shows_pictures_and_costs_when_present(re
         assert src.startswith("data:image/png;base64,")
         assert base64.b64decode(src.split(",", 1)[1])[:8] == PNG
     assert "pictures/attention.png" in page and "seconds_per_utterance" in page
+    assert (folder / "report" / "cost.png").is_file()  # the cost table's numbers against N
     assert "No pictures" not in page and "No cost tables" not in page
     assert "No spread over seeds" in page  # one seed: the page says why the seeds table is absent
     again = make_report(folder)  # the report's own folder is not read back as input

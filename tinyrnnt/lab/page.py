@@ -125,7 +125,7 @@ def _md_table(rows: list[dict]) -> str:
                      + ["| " + " | ".join(fmt(r.get(k)) for k in keys) + " |" for r in rows])
 
 
-def _csv_rows(path: Path) -> list[dict]:
+def csv_rows(path: Path) -> list[dict]:
     import csv
 
     with path.open(encoding="utf-8", newline="") as f:
@@ -145,7 +145,7 @@ def markdown(data: dict, out: Path) -> str:
         if kind == "pictures":
             parts += [f"![{p.name}]({os.path.relpath(p, out)})" for p in data["pictures"]]
         if kind == "costs":
-            parts += [f"{p.name}:\n\n{_md_table(_csv_rows(p))}\n" for p in data["costs"] if _csv_rows(p)]
+            parts += [f"{p.name}:\n\n{_md_table(csv_rows(p))}\n" for p in data["costs"] if csv_rows(p)]
     return "\n".join(parts) + "\n"
 
 
@@ -189,6 +189,6 @@ def html(data: dict) -> str:
         if kind == "pictures":
             parts += [_img(p, str(p.relative_to(data["folder"]))) for p in data["pictures"]]
         if kind == "costs":
-            parts += [f"<p>{H.escape(p.name)}</p>" + _html_table(_csv_rows(p)) for p in data["costs"] if _csv_rows(p)]
+            parts += [f"<p>{H.escape(p.name)}</p>" + _html_table(csv_rows(p)) for p in data["costs"] if csv_rows(p)]
     parts.append("</body></html>\n")
     return "".join(parts)

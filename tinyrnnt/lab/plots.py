@@ -120,3 +120,30 @@ def boost_curves(curves: list[dict], variant: str, path: Path) -> Path:
     fig.tight_layout()
     return save_png(fig, path)
 
+
+
+def cost_against_list_size(name: str, rows: list[dict], path: Path) -> Path | None:
+    """Every numeric column of a cost table against its `list_size` column (None when it has none)."""
+    def number(v):
+        try:
+            return float(v)
+        except (TypeError, ValueError):
+            return None
+
+    if not rows or "list_size" not in rows[0]:
+        return None
+    keys = [k for k in rows[0] if k != "list_size" and all(number(r[k]) is not None for r in rows)]
+    if not keys:
+        return None
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(6, 4))
+    ordered = sorted(rows, key=lambda r: number(r["list_size"]))
+    for k in keys:
+        ax.plot([number(r["list_size"]) for r in ordered], [number(r[k]) for r in ordered], marker="o", label=k)
+    ax.set_xscale("symlog", linthresh=10)
+    ax.set_xlabel("biasing list size N")
+    ax.set_title(f"cost against list size ({name})")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    return save_png(fig, path)

@@ -272,6 +272,10 @@ def make_report(folder: str | Path, out: str | Path | None = None, against: str 
                 for r, p, s in data["boost"] if p.name.split(".")[1] == variant]
         figures.append(("boost", plots.boost_curves(mine, variant, out / f"boost.{variant}.png"),
                         f"shallow fusion ({variant}): rates on the tuning split against the boost weight"))
+    for cost in data["costs"]:
+        path = plots.cost_against_list_size(cost.name, page.csv_rows(cost), out / f"{cost.stem}.png")
+        if path is not None:
+            figures.append(("costs", path, f"cost against list size, from {cost.relative_to(folder)}"))
     data["figures"] = figures
     files += [p for _, p, _ in figures]
     markdown = page.markdown(data, out)
