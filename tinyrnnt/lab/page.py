@@ -78,8 +78,9 @@ def headline_text(data: dict) -> list[str]:
                        "no biased words, no B-WER")
             continue
         steps = "equal steps" if r["steps"] == r["against_steps"] else "steps"
+        decoding = "" if r["decoding"] == "grid" else f", {r['decoding']} decoding"  # a grid's system names it
         out.append(f"{r['system']} against {r['against']} ({steps}: {r['steps']:,} and {r['against_steps']:,}), "
-                   f"{r['split']}, N = {r['list_size']}, {r['decoding']} decoding, seed {r['seed']}: B-WER "
+                   f"{r['split']}, N = {r['list_size']}{decoding}, seed {r['seed']}: B-WER "
                    f"{r['value']:.3f} against {r['against_value']:.3f}, difference {r['delta']:+.3f} "
                    f"(95 % interval {r['low']:+.3f} to {r['high']:+.3f}): {r['verdict']}; probability of "
                    f"improvement {r['p_improvement']:.2f}")
@@ -119,10 +120,37 @@ def sections(data: dict) -> list[tuple[str, str, list[dict] | None, str | None]]
     return out
 
 
+def show(key: str, value) -> str:
+    """A cell of column `key`: rate names in capitals, the rest as fmt.
+
+    >>> show("metric", "bwer"), show("wer", 0.25)
+    ('B-WER', '0.250')
+    """
+    return RATES.get(value, value) if key == "metric" else fmt(value)
+
+
+SETTINGS = ("run", "system", "against", "role", "seed", "decoding", "split", "list_size", "steps", "against_steps",
+            "boost_weight", "metric", "words")  # columns that say what a row is (not what it measured)
+
+
+def split_constant(rows: list[dict]) -> tuple[list[str], str]:
+    """Columns to show, and a sentence naming the setting columns that are the same in every row
+    (shown once above the table instead of in every row).
+
+    >>> split_constant([{"split": "test", "wer": 0.1}, {"split": "test", "wer": 0.2}])
+    (['wer'], 'In every row: split test.')
+    """
+    same = [k for k in rows[0] if k in SETTINGS and len(rows) > 1 and len({str(r.get(k)) for r in rows}) == 1]
+    keys = [k for k in rows[0] if k not in same]
+    words = ", ".join(f"{label(k)} {fmt(rows[0][k])}" for k in same)
+    return keys, (f"In every row: {words}." if same else "")
+
+
 def _md_table(rows: list[dict]) -> str:
-    keys = list(rows[0])
-    return "\n".join(["| " + " | ".join(label(k) for k in keys) + " |", "|" + "---|" * len(keys)]
-                     + ["| " + " | ".join(fmt(r.get(k)) for k in keys) + " |" for r in rows])
+    keys, same = split_constant(rows)
+    return "\n".join(([same, ""] if same else []) + ["| " + " | ".join(label(k) for k in keys) + " |",
+                                                     "|" + "---|" * len(keys)]
+                     + ["| " + " | ".join(show(k, r.get(k)) for k in keys) + " |" for r in rows])
 
 
 def csv_rows(path: Path) -> list[dict]:
@@ -150,7 +178,7 @@ def markdown(data: dict, out: Path) -> str:
 
 
 STYLE = ("body{font-family:sans-serif;margin:2em;max-width:80em;color:#222}"
-         "table{border-collapse:collapse;font-size:13px;margin:.5em 0}td,th{border:1px solid #ccc;padding:2px 6px}"
+         "table{border-collapse:collapse;font-size:13px;margin:.5em 0;display:block;overflow-x:auto}td,th{border:1px solid #ccc;padding:2px 6px}"
          "th{background:#eee}td.lower{color:#060;font-weight:bold}td.higher{color:#a00;font-weight:bold}"
          "img{max-width:100%;border:1px solid #ddd}figure{margin:1em 0}figcaption{font-size:13px;color:#555}")
 
@@ -162,17 +190,17 @@ def _img(path: Path, caption: str) -> str:
 
 
 def _html_table(rows: list[dict]) -> str:
-    keys = list(rows[0])
+    keys, same = split_constant(rows)
     head = "".join(f"<th>{H.escape(label(k))}</th>" for k in keys)
 
     def cell(k, v):
         cls = ""
         if k == "verdict" and isinstance(v, str) and "excludes zero" in v:
             cls = ' class="lower"' if v.startswith("lower") else ' class="higher"'
-        return f"<td{cls}>{H.escape(fmt(v))}</td>"
+        return f"<td{cls}>{H.escape(show(k, v))}</td>"
 
     body = "".join("<tr>" + "".join(cell(k, r.get(k)) for k in keys) + "</tr>" for r in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
+    return (f"<p>{H.escape(same)}</p>" if same else "") + f"<table><tr>{head}</tr>{body}</table>"
 
 
 def html(data: dict) -> str:

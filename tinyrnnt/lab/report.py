@@ -258,10 +258,10 @@ def make_report(folder: str | Path, out: str | Path | None = None, against: str 
     for decoding, split in dict.fromkeys((p["decoding"], p["split"]) for p in data["points"]):
         mine = [dict(p, system=p["run"] + (f" seed {p['seed']}" if len({q["seed"] for q in data["points"]}) > 1 else ""))
                 for p in data["points"] if (p["decoding"], p["split"]) == (decoding, split)]
-        if len({p["list_size"] for p in mine}) > 0:
-            path = plots.rates_against_list_size(mine, f"{split}, {decoding} decoding", out / f"rates.{decoding}.{split}.png")
-            figures.append(("rates", path, f"B-WER and U-WER against list size on {split}, {decoding} decoding; bars: "
-                                           "95 % bootstrap interval of each rate over utterances"))
+        title = split if decoding == "grid" else f"{split}, {decoding} decoding"
+        path = plots.rates_against_list_size(mine, title, out / f"rates.{decoding}.{split}.png")
+        figures.append(("rates", path, f"B-WER and U-WER against list size on {title}; bars: "
+                                       "95 % bootstrap interval of each rate over utterances"))
     curves = training_logs(data)
     if curves:
         figures.append(("training", plots.training_curves(curves, out / "training.png"),
