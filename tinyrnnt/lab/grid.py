@@ -105,7 +105,7 @@ def expand(recipe, plan: GridPlan, overrides=()) -> tuple[list[Cell], dict]:
         model = ",".join(f"{a}={labels[a]}" for a in plan.training_axes()) or "model"
         if model not in models:
             merged = C._merge(C._merge(C.to_dict(ExperimentConfig()), recipe.shared, "shared"), train_diff, "grid")
-            merged.update(name=model, run_dir=str(Path(recipe.out_dir) / recipe.name / "grid" / _slug(model)))
+            merged.update(name=model, run_dir=str(Path(recipe.out_dir) / recipe.name / "grid" / slug(model)))
             cfg = C.from_dict(ExperimentConfig, merged, f"recipe {recipe.name}, grid model {model}")
             models[model] = C.apply_overrides(cfg, list(overrides) + sets)
         cell = Cell(labels, model, decode, int(labels.get("list_size", 0)))
@@ -114,10 +114,10 @@ def expand(recipe, plan: GridPlan, overrides=()) -> tuple[list[Cell], dict]:
     return cells, models
 
 
-def _slug(text: str) -> str:
+def slug(text: str) -> str:
     """A folder name for a model id.
 
-    >>> _slug("biasing=trie_joiner,seed=0")
+    >>> slug("biasing=trie_joiner,seed=0")
     'biasing-trie_joiner.seed-0'
     """
     return text.replace("=", "-").replace(",", ".")

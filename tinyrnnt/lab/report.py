@@ -90,7 +90,7 @@ def read_folder(folder: str | Path, out: Path | None = None) -> dict:
 def grid_tables(folder: Path) -> dict:
     """A grid's lines as the report's tables: a system is a cell's labels but list size and seed;
     comparisons are each cell against its reference cell (grid_comparisons.json)."""
-    from tinyrnnt.lab.grid import read_lines
+    from tinyrnnt.lab.grid import slug, read_lines
     from tinyrnnt.lab.tables import TABLE_KEYS, seed_rows
 
     lines = read_lines(folder / "grid.jsonl")
@@ -103,7 +103,8 @@ def grid_tables(folder: Path) -> dict:
                "train_s": g["train_s"], **{k: g.get(k) for k in TABLE_KEYS}}
         rows.append(row)
         key = (row["run"], row["seed"], "grid", row["split"], row["list_size"])
-        where[key], names[g["cell"]] = (Path(g["run_dir"]) / "results", g["hyps"]), row
+        # the model's folder inside this one (the recorded run_dir may be relative to another directory)
+        where[key], names[g["cell"]] = (folder / "grid" / slug(g["model"]) / "results", g["hyps"]), row
     cmp_path = folder / "grid_comparisons.json"
     comparisons = []
     for c in _read_json(cmp_path, "the grid comparisons") if cmp_path.is_file() else []:
