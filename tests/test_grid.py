@@ -132,6 +132,9 @@ def test_a_torn_last_line_is_dropped_and_bad_grids_are_named(corpus, tmp_path):
     bad.write_text(recipe.replace("plain:", "off:"))
     with pytest.raises(ConfigError, match="quote it"):
         read_recipe(bad)
+    bad.write_text(recipe.replace("plain:", "'plain fusion':"))
+    with pytest.raises(ConfigError, match="only letters"):
+        read_recipe(bad)
     bad.write_text(recipe.replace("axes:", "rows: 1\n  axes:"))
     with pytest.raises(ConfigError, match="unknown key 'rows'"):
         read_recipe(bad)

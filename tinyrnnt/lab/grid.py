@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import re
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -57,6 +58,11 @@ class GridPlan:
                 if odd:  # subtle: YAML reads on/off/yes/no as true/false and a bare ~ as null
                     raise C.ConfigError(f"{where}: label {odd[0]!r} is not a name (YAML reads on, off, yes and no "
                                         "as true or false); quote it, e.g. 'on': {...}")
+                odd = [k for k in values if not re.fullmatch(r"[A-Za-z0-9_.+-]+", str(k))]
+                if odd:  # labels name folders and cells ("axis=label,axis=label")
+                    raise C.ConfigError(f"{where}: label {odd[0]!r} may hold only letters, digits and _ . + -")
+        if not re.fullmatch(r"[A-Za-z0-9_]+", axis):
+            raise C.ConfigError(f"grid.axes: axis name {axis!r} may hold only letters, digits and _")
         for axis, ref in self.compare.items():
             if axis not in self.axes or str(ref) not in map(str, self.axes[axis]):
                 raise C.ConfigError(f"grid.compare.{axis}: expected an axis and one of its labels; axes: "
