@@ -13,7 +13,7 @@ import pytest
 from test_cli import TINY  # the same tiny corpus settings as the CLI tests
 from tinyrnnt.config import ConfigError
 from tinyrnnt.lab.grid import read_lines, run_grid
-from tinyrnnt.lab.recipes import read_recipe, run_recipe
+from tinyrnnt.lab.recipes import read_recipe, run_recipe, split_overrides
 from tinyrnnt.lab.report import make_report
 from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
 
@@ -86,6 +86,13 @@ def test_a_grid_runs_every_cell_once_and_a_second_run_recomputes_nothing(corpus,
     # a new axis value adds only its own cells; the rest are kept
     more = run_recipe(path, overrides=["grid.splits=[test_unseen, test]"], quiet=True)
     assert len(more) == 16 and len(read_lines(folder / "grid.jsonl")) == 16
+    # a cell whose decoding changed under the same label is computed again; its model is kept
+    changed, _ = split_overrides(recipe, ["grid.splits=[test_unseen, test]",
+                                          "grid.axes.fusion.boosted.decode.boost_weight=3"])
+    redo = run_grid(changed, quiet=True)
+    assert (redo["evaluated"], redo["kept"], redo["trained"]) == (8, 8, 0)
+    lines = {(g["cell"], g["split"]): g for g in read_lines(folder / "grid.jsonl")}
+    assert {g["boost_weight"] for g in lines.values() if g["fusion"] == "boosted"} == {3.0}
 
 
 def test_a_grid_killed_midway_loses_nothing_and_recomputes_nothing(corpus, tmp_path):

@@ -32,6 +32,9 @@ from pathlib import Path
 
 from tinyrnnt import config as C
 
+RESERVED = {"cell", "split", "model", "run_dir", "hyps", "checkpoint", "steps", "train_s", "limit", "decode",
+            "decoding", "start", "model_config", "boost_weight", "n_utts", "decode_seconds", "wer", "cer", "uwer",
+            "bwer", "recall", "precision", "false_trigger_rate"}  # keys of a result line
 LIST_AXES = {"seed": "train.seed", "list_size": "evaluation list size"}  # axes given as plain lists of numbers
 
 
@@ -61,8 +64,9 @@ class GridPlan:
                 odd = [k for k in values if not re.fullmatch(r"[A-Za-z0-9_.+-]+", str(k))]
                 if odd:  # labels name folders and cells ("axis=label,axis=label")
                     raise C.ConfigError(f"{where}: label {odd[0]!r} may hold only letters, digits and _ . + -")
-        if not re.fullmatch(r"[A-Za-z0-9_]+", axis):
-            raise C.ConfigError(f"grid.axes: axis name {axis!r} may hold only letters, digits and _")
+        if not re.fullmatch(r"[A-Za-z0-9_]+", axis) or axis in RESERVED:
+            raise C.ConfigError(f"grid.axes: axis name {axis!r} may hold only letters, digits and _, and may not be "
+                                f"one of {sorted(RESERVED)}")
         for axis, ref in self.compare.items():
             if axis not in self.axes or str(ref) not in map(str, self.axes[axis]):
                 raise C.ConfigError(f"grid.compare.{axis}: expected an axis and one of its labels; axes: "
@@ -169,9 +173,10 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
     for cfg in {m.data.corpus: m for m in models.values()}.values():
         ensure_corpus(cfg, quiet)
         check_plan(EvalPlan(splits=tuple(plan.splits), list_sizes=tuple({c.list_size for c in cells})), cfg.data.corpus)
-    start = None
+    start = start_history = None  # the start's history: a start trained again makes every cell stale
     if plan.start_from:
         start = _train_one(run_config(recipe, plan.start_from, overrides), quiet, resume=True)["last_checkpoint"]
+        start_history = read_history(start)
     say = (lambda text: None) if quiet else (lambda text: print(text, file=sys.stderr, flush=True))  # noqa: E731
     stats, total = {"trained": 0, "evaluated": 0, "kept": 0}, len(cells) * len(plan.splits)
     count = 0
@@ -180,9 +185,10 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
             cfg = C.apply_overrides(cfg, [f"train.init_from={start}"])
         mine = [c for c in cells if c.model == model_id]
         config = C.to_dict(cfg)
+        same = {"model_config": config, "limit": recipe.evaluate.limit, "start": start_history}
         todo = [(c, s) for c in mine for s in plan.splits
-                if not (done.get((c.id, s), {}).get("model_config") == config
-                        and done[(c.id, s)].get("limit") == recipe.evaluate.limit)]
+                if {k: done.get((c.id, s), {}).get(k) for k in same} != same
+                or done[(c.id, s)].get("decoding") != c.decode]
         stats["kept"] += len(mine) * len(plan.splits) - len(todo)
         count += len(mine) * len(plan.splits) - len(todo)
         if not todo:
@@ -214,7 +220,7 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
                     "train_s": round(history["seconds"], 1), "limit": recipe.evaluate.limit,
                     "decode": C.to_dict(dcfg), "boost_weight": dcfg.boost_weight, "n_utts": summary["n_utts"],
                     "decode_seconds": summary["decode_seconds"], **{k: summary.get(k) for k in TABLE_KEYS},
-                    "model_config": config}
+                    "decoding": cell.decode, "start": start_history, "model_config": config}
             with lines_path.open("a", encoding="utf-8") as f:  # one whole line per write
                 f.write(json.dumps(line) + "\n")
             done[(cell.id, split)] = line
