@@ -84,6 +84,32 @@ def headline_text(data: dict) -> list[str]:
                    f"{r['value']:.3f} against {r['against_value']:.3f}, difference {r['delta']:+.3f} "
                    f"(95 % interval {r['low']:+.3f} to {r['high']:+.3f}): {r['verdict']}; probability of "
                    f"improvement {r['p_improvement']:.2f}")
+    return out + seed_spread(rows)
+
+
+def seed_spread(rows: list[dict]) -> list[str]:
+    """With several training seeds: the mean difference over seeds and its spread (sample sd),
+    beside the per-seed intervals (which cover test-set sampling only).
+
+    >>> r = dict(system="trie", against="ctl", decoding="greedy", split="test", list_size=100, delta=-0.3)
+    >>> seed_spread([dict(r, seed=0), dict(r, seed=1, delta=-0.2)])
+    ['trie against ctl, test, N = 100, greedy decoding, over 2 training seeds: mean B-WER difference -0.250, spread (sd) 0.071, 2 of 2 seeds lower']
+    """
+    import statistics
+
+    groups: dict[tuple, list[dict]] = {}
+    for r in rows:
+        if r.get("delta") is not None:
+            groups.setdefault((r["system"], r["against"], r["decoding"], r["split"], r["list_size"]), []).append(r)
+    out = []
+    for (system, against, decoding, split, n), rs in groups.items():
+        if len({r["seed"] for r in rs}) < 2:
+            continue
+        deltas = [r["delta"] for r in rs]
+        how = "" if decoding == "grid" else f", {decoding} decoding"
+        out.append(f"{system} against {against}, {split}, N = {n}{how}, over {len(rs)} training seeds: mean B-WER "
+                   f"difference {statistics.fmean(deltas):+.3f}, spread (sd) {statistics.stdev(deltas):.3f}, "
+                   f"{sum(d < 0 for d in deltas)} of {len(rs)} seeds lower")
     return out
 
 
