@@ -62,7 +62,8 @@ def test_a_grid_runs_every_cell_once_and_a_second_run_recomputes_nothing(corpus,
     folder = tmp_path / "runs" / "tiny_grid"
     lines = read_lines(folder / "grid.jsonl")
     assert sorted(g["cell"] for g in lines) == sorted(
-        f"biasing={b},list_size={n},fusion={f}" for b in ("none", "trie") for n in (0, 10) for f in ("plain", "boosted"))
+        f"biasing={b},list_size={n},fusion={f}" for b in ("none", "trie") for n in (0, 10)
+        for f in ("plain", "boosted"))
     # cells that differ only in decoding share one model; both models fine-tune the baseline
     assert {g["model"] for g in lines} == {"biasing=none", "biasing=trie"}
     assert len({g["checkpoint"] for g in lines}) == 2

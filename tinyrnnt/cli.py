@@ -6,7 +6,7 @@
     tinyrnnt decode  CHECKPOINT [--split S] [--list-size N] ...   decode a split, write hypotheses + scores
     tinyrnnt score   HYPS.jsonl [--corpus DIR --split S]          score a hypothesis file
     tinyrnnt experiment [--recipe R] [--resume] [key=value ...]   corpus if needed, train, evaluate, tables
-    tinyrnnt report  FOLDER [--out DIR] [--against RUN]             render a results folder: summary, CSV, plots, HTML
+    tinyrnnt report  FOLDER [--out DIR] [--against RUN]           a results folder as summary, CSV, plots, one HTML page
     tinyrnnt bench   NAME [options]                               a benchmark (python -m tinyrnnt.bench)
 """
 
@@ -225,7 +225,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     r = sub.add_parser("report", help="render a results folder into a summary, CSV tables, plots and one HTML page",
                        epilog="example: tinyrnnt report runs/trie_vs_baseline --against baseline")
-    r.add_argument("folder", help="a results folder written by `tinyrnnt experiment` (holding results.json)")
+    r.add_argument("folder", help="a results folder written by `tinyrnnt experiment` (holding results.json, or a "
+                                  "grid's grid.jsonl)")
     r.add_argument("--out", default=None, help="folder for the report (default FOLDER/report)")
     r.add_argument("--against", default=None, metavar="RUN",
                    help="also compare every system with this run (paired bootstrap of WER, U-WER and B-WER)")

@@ -165,7 +165,8 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
 
     plan = C.from_dict(GridPlan, recipe.grid, "grid")
     if plan.start_from and plan.start_from not in recipe.runs:
-        raise C.ConfigError(f"grid.start_from: {plan.start_from!r} is not a run of the recipe; runs: {list(recipe.runs)}")
+        raise C.ConfigError(f"grid.start_from: {plan.start_from!r} is not a run of the recipe; "
+                            f"runs: {list(recipe.runs)}")
     cells, models = expand(recipe, plan, overrides)
     folder = Path(recipe.out_dir) / recipe.name
     lines_path = folder / "grid.jsonl"
@@ -205,9 +206,10 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
             settings, tuned = decode_settings(cell.id, cell.decode)
             dcfg = C.apply_overrides(cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()])
             if tuned:
-                if cell.decoding(plan) not in weights:
-                    weights[cell.decoding(plan)] = tuned_weight(model, cfg, dcfg, recipe.evaluate, cell.decoding(plan), say)
-                dcfg = C.apply_overrides(dcfg, [f"boost_weight={weights[cell.decoding(plan)]}"])
+                variant = cell.decoding(plan)
+                if variant not in weights:
+                    weights[variant] = tuned_weight(model, cfg, dcfg, recipe.evaluate, variant, say)
+                dcfg = C.apply_overrides(dcfg, [f"boost_weight={weights[variant]}"])
             say(f"[{count}/{total}] {cell.id} on {split}")
             records, summary = evaluate(model, CorpusSplit(cfg.data.corpus, split), list_size=cell.list_size,
                                         max_symbols=dcfg.max_symbols, limit=recipe.evaluate.limit or None,

@@ -92,8 +92,9 @@ def seed_spread(rows: list[dict]) -> list[str]:
     beside the per-seed intervals (which cover test-set sampling only).
 
     >>> r = dict(system="trie", against="ctl", decoding="greedy", split="test", list_size=100, delta=-0.3)
-    >>> seed_spread([dict(r, seed=0), dict(r, seed=1, delta=-0.2)])
-    ['trie against ctl, test, N = 100, greedy decoding, over 2 training seeds: mean B-WER difference -0.250, spread (sd) 0.071, 2 of 2 seeds lower']
+    >>> print(seed_spread([dict(r, seed=0), dict(r, seed=1, delta=-0.2)])[0])
+    trie against ctl, test, N = 100, greedy decoding, over 2 training seeds: mean B-WER difference -0.250, \
+spread (sd) 0.071, 2 of 2 seeds lower
     """
     import statistics
 
@@ -204,7 +205,8 @@ def markdown(data: dict, out: Path) -> str:
 
 
 STYLE = ("body{font-family:sans-serif;margin:2em;max-width:80em;color:#222}"
-         "table{border-collapse:collapse;font-size:13px;margin:.5em 0;display:block;overflow-x:auto}td,th{border:1px solid #ccc;padding:2px 6px}"
+         "table{border-collapse:collapse;font-size:13px;margin:.5em 0;display:block;overflow-x:auto}"
+         "td,th{border:1px solid #ccc;padding:2px 6px}"
          "th{background:#eee}td.lower{color:#060;font-weight:bold}td.higher{color:#a00;font-weight:bold}"
          "img{max-width:100%;border:1px solid #ddd}figure{margin:1em 0}figcaption{font-size:13px;color:#555}")
 

@@ -340,7 +340,7 @@ RECIPE_LEVEL = ("name", "out_dir", "evaluate", "parallel", "seeds", "controls", 
 
 def split_overrides(recipe: Recipe, overrides) -> tuple[Recipe, list[str]]:
     """`key=value` overrides of the recipe itself (evaluate.*, seeds, parallel, controls, pairing,
-    name, out_dir) applied to it; the rest returned, for every run's experiment config."""
+    name, out_dir, grid.*) applied to it; the rest returned, for every run's experiment config."""
     own = [o for o in overrides if o.split("=", 1)[0].split(".")[0].strip() in RECIPE_LEVEL]
     into_grid = [o for o in own if o.split("=", 1)[0].strip().startswith("grid.")]
     if into_grid:  # the grid is a free-form mapping: its settings are set inside it, then checked whole

@@ -256,8 +256,9 @@ def make_report(folder: str | Path, out: str | Path | None = None, against: str 
             write_atomic(out / f"{name}.csv", to_csv(rows))
             files.append(out / f"{name}.csv")
     figures = []  # (title, path, caption)
+    several = len({q["seed"] for q in data["points"]}) > 1
     for decoding, split in dict.fromkeys((p["decoding"], p["split"]) for p in data["points"]):
-        mine = [dict(p, system=p["run"] + (f" seed {p['seed']}" if len({q["seed"] for q in data["points"]}) > 1 else ""))
+        mine = [dict(p, system=p["run"] + (f" seed {p['seed']}" if several else ""))
                 for p in data["points"] if (p["decoding"], p["split"]) == (decoding, split)]
         title = split if decoding == "grid" else f"{split}, {decoding} decoding"
         path = plots.rates_against_list_size(mine, title, out / f"rates.{decoding}.{split}.png")

@@ -76,10 +76,10 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
                     boost = None
                     if weight != 0:
                         boost = C.apply_overrides(dcfg, [f"boost_weight={weight}"]).boost()
+                    bar = False if quiet else f"({count}/{total}) {key} {variant} {split_name} N={n}"
                     records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
                                                 max_symbols=dcfg.max_symbols, limit=plan.limit or None,
-                                                search=dcfg.search, beam=dcfg.beam, boost=boost,
-                                                progress=False if quiet else f"({count}/{total}) {key} {variant} {split_name} N={n}")
+                                                search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar)
                     summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
                                    boost_weight=weight)
                     save_results(folder, name, records, summary)
