@@ -166,3 +166,27 @@ def test_shipped_recipes_read_and_expand(name):
         arms = expand_arms(recipe)
         assert {"baseline", "trie", "trie_control"} <= set(arms)
         assert arms["trie"].cfg.train.steps == arms["trie_control"].cfg.train.steps
+
+
+def test_a_grid_without_runs_over_seeds_trains_from_nothing_and_reports_the_spread(corpus, tmp_path):
+    path = tmp_path / "seeds.yaml"
+    path.write_text(f"""name: seeds
+out_dir: {tmp_path / 'runs'}
+shared:
+  data: {{corpus: {corpus}, batch_size: 8, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 3, minutes: 0, validate_every_steps: 3, threads: 1, snapshot_minutes: 0}}
+grid:
+  compare: {{biasing: none}}
+  axes:
+    biasing: {{none: {{}}, trie: {{bias: {{kind: trie, cue_dim: 8}}}}}}
+    seed: [0, 1]
+    list_size: [10]
+""")
+    rows = run_recipe(path, quiet=True)
+    folder = tmp_path / "runs" / "seeds"
+    lines = read_lines(folder / "grid.jsonl")
+    assert len(rows) == len(lines) == 4 and {g["model_config"]["train"]["seed"] for g in lines} == {0, 1}
+    assert all(g["steps"] == 3 and g["model_config"]["train"]["init_from"] == "" for g in lines)
+    page = (folder / "report" / "report.html").read_text()
+    assert "over 2 training seeds" in page and "No spread over seeds" not in page

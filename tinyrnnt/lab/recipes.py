@@ -156,7 +156,7 @@ def read_recipe(path: str | Path | None) -> Recipe:
         raise C.ConfigError(f"{path}: not valid YAML: {C.yaml_problem(err)}") from None
     if not isinstance(data, dict):
         raise C.ConfigError(f"{path}: a recipe is a mapping")
-    if "runs" not in data:  # a single experiment's differences
+    if "runs" not in data and "grid" not in data:  # a single experiment's differences
         data = {"name": path.stem, "shared": data, "runs": {data.get("name", path.stem): {}}}
     data.setdefault("name", path.stem)
     try:
