@@ -6,6 +6,7 @@
     tinyrnnt decode  CHECKPOINT [--split S] [--list-size N] ...   decode a split, write hypotheses + scores
     tinyrnnt score   HYPS.jsonl [--corpus DIR --split S]          score a hypothesis file
     tinyrnnt experiment [--recipe R] [--resume] [key=value ...]   corpus if needed, train, evaluate, tables
+    tinyrnnt report  FOLDER [--out DIR] [--against RUN]           a results folder as summary, CSV, plots, one HTML page
     tinyrnnt bench   NAME [options]                               a benchmark (python -m tinyrnnt.bench)
 """
 
@@ -136,6 +137,23 @@ def _experiment(args) -> int:
     return 0
 
 
+def _report(args) -> int:
+    from tinyrnnt.lab.page import fmt, label
+    from tinyrnnt.lab.report import make_report
+
+    made = make_report(args.folder, args.out, args.against)
+    for sentence in made["headline_text"] if not args.quiet else ():
+        print(f"- {sentence}")
+    rows = made["headline"]
+    if rows and not args.quiet:
+        keys = [k for k in rows[0] if k not in ("steps", "against_steps", "verdict")]
+        print("| " + " | ".join(label(k) for k in keys) + " |")
+        for r in rows:
+            print("| " + " | ".join(fmt(r[k]) for k in keys) + " |")
+    print(f"report: {made['html']} (one file, opens in any browser); summary: {made['markdown']}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     from tinyrnnt import __version__
 
@@ -204,6 +222,16 @@ def build_parser() -> argparse.ArgumentParser:
                    help="section.key=value overrides: of the recipe itself (evaluate.list_sizes=[0,100], seeds=[0,1], "
                         "parallel=1, controls=false, pairing=from_scratch) or of every run (train.steps=300)")
     e.set_defaults(fn=_experiment)
+
+    r = sub.add_parser("report", help="render a results folder into a summary, CSV tables, plots and one HTML page",
+                       epilog="example: tinyrnnt report runs/trie_vs_baseline --against baseline")
+    r.add_argument("folder", help="a results folder written by `tinyrnnt experiment` (holding results.json, or a "
+                                  "grid's grid.jsonl)")
+    r.add_argument("--out", default=None, help="folder for the report (default FOLDER/report)")
+    r.add_argument("--against", default=None, metavar="RUN",
+                   help="also compare every system with this run (paired bootstrap of WER, U-WER and B-WER)")
+    r.add_argument("--quiet", action="store_true", help="print only where the report is")
+    r.set_defaults(fn=_report)
 
     sub.add_parser("bench", help="run a benchmark, as python -m tinyrnnt.bench NAME (see tinyrnnt bench --help)")
     from tinyrnnt.audio.commands import add_commands

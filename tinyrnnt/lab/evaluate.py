@@ -76,13 +76,14 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
              batch_size: int = 64, max_symbols: int = 4, limit: int | None = None,
              fixed_list: list[str] | None = None, search: str = "greedy", beam: int = 4,
              boost: dict | None = None, fixed_classes: list[str | None] | None = None,
-             progress: bool = False) -> tuple[list[dict], dict]:
+             progress: bool | str = False) -> tuple[list[dict], dict]:
     """Per-utterance records and the corpus summary (score.summarize keys, plus timing).
 
     fixed_list: one biasing list for every utterance (a user's own) instead of the corpus lists;
     fixed_classes: the entity class of each of its entries (after-trigger boosting).
     search: "greedy" or "beam" (records then carry "nbest": [[text, score], ...]); boost: shallow
     fusion for beam search (DecodeConfig.boost()), entry classes filled in from the corpus.
+    progress: a bar with the time left on stderr (a string is its label; True: split and list size).
     """
     from tinyrnnt.decode.beam import beam_search
 
@@ -107,6 +108,9 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             raise CorpusError(f"decode.triggers: class {unknown[0]!r} is not a class of the biasing list's entries; "
                               f"known classes: {known}")
     records, decode_s, audio_s = [], 0.0, 0.0
+    total = min(limit, len(split.items)) if limit is not None else len(split.items)
+    label = progress if isinstance(progress, str) else f"{split.split} N={list_size}"
+    started = time.perf_counter()
     hop = split.card["features"]["hop_ms"] / 1000.0
     with torch.no_grad():
         for batch in loader(split, batch_size, transform=attach):
@@ -131,8 +135,8 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                                      biaser=biaser)
             decode_s += time.perf_counter() - t0
             if progress:
-                print(f"\r  decoded {len(records) + len(hyps)}/{len(split.items)} utterances", end="",
-                      file=sys.stderr, flush=True)
+                print("\r" + progress_bar(label, len(records) + len(hyps), total, time.perf_counter() - started),
+                      end="", file=sys.stderr, flush=True)
             audio_s += float(batch["feat_lens"].sum()) * hop
             for k, h in enumerate(hyps):
                 hyp = decode(h)
@@ -152,6 +156,20 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                     "audio_seconds": round(audio_s, 1), "rtf": decode_s / max(audio_s, 1e-9)})
     summary.update(exposure_recall(records))
     return records, summary
+
+
+def progress_bar(label: str, done: int, total: int, elapsed: float, width: int = 24) -> str:
+    """One line of progress: a bar, the count and the time left at the pace so far.
+
+    >>> progress_bar("test N=100", 30, 120, 6.0, width=8)
+    '  test N=100 [##......] 30/120 utterances, 6 s, about 18 s left'
+    >>> progress_bar("test N=100", 120, 120, 24.4, width=8)
+    '  test N=100 [########] 120/120 utterances, 24 s, done'
+    """
+    total = max(total, 1)
+    filled = min(width, width * done // total)
+    left = "done" if done >= total else f"about {elapsed / max(done, 1) * (total - done):.0f} s left"
+    return f"  {label} [{'#' * filled}{'.' * (width - filled)}] {done}/{total} utterances, {elapsed:.0f} s, {left}"
 
 
 def exposure_recall(records: list[dict], cls: str | None = None) -> dict:

@@ -120,12 +120,17 @@ class Recipe:
     seeds: tuple[int, ...] = (0,)  # training seeds (train.seed); every arm is trained once per seed
     controls: bool = True  # an equal-steps control arm (no biasing input) beside every biased run
     pairing: str = "fine_tune"  # or "from_scratch": no arm starts from another, steps summed
+    grid: dict = field(default_factory=dict)  # axes whose every cell is run (tinyrnnt.lab.grid); {} = no grid
 
     def __post_init__(self):
         if self.pairing not in PAIRINGS:
             raise C.ConfigError(f"pairing must be one of {PAIRINGS}, got {self.pairing!r}")
         if not self.seeds or len(set(self.seeds)) != len(self.seeds):
             raise C.ConfigError(f"seeds must be a non-empty list of distinct whole numbers, got {list(self.seeds)}")
+        if self.grid:
+            from tinyrnnt.lab.grid import GridPlan
+
+            C.from_dict(GridPlan, self.grid, "grid")  # checked now, before any training
 
 
 @dataclass
@@ -151,7 +156,7 @@ def read_recipe(path: str | Path | None) -> Recipe:
         raise C.ConfigError(f"{path}: not valid YAML: {C.yaml_problem(err)}") from None
     if not isinstance(data, dict):
         raise C.ConfigError(f"{path}: a recipe is a mapping")
-    if "runs" not in data:  # a single experiment's differences
+    if "runs" not in data and "grid" not in data:  # a single experiment's differences
         data = {"name": path.stem, "shared": data, "runs": {data.get("name", path.stem): {}}}
     data.setdefault("name", path.stem)
     try:
@@ -362,14 +367,32 @@ def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool, resume: bool = 
     return {key: done[key] for key in arms}
 
 
-RECIPE_LEVEL = ("name", "out_dir", "evaluate", "parallel", "seeds", "controls", "pairing")
+RECIPE_LEVEL = ("name", "out_dir", "evaluate", "parallel", "seeds", "controls", "pairing", "grid")
 
 
 def split_overrides(recipe: Recipe, overrides) -> tuple[Recipe, list[str]]:
     """`key=value` overrides of the recipe itself (evaluate.*, seeds, parallel, controls, pairing,
-    name, out_dir) applied to it; the rest returned, for every run's experiment config."""
+    name, out_dir, grid.*) applied to it; the rest returned, for every run's experiment config."""
     own = [o for o in overrides if o.split("=", 1)[0].split(".")[0].strip() in RECIPE_LEVEL]
-    return C.apply_overrides(recipe, own), [o for o in overrides if o not in own]  # checks in __post_init__
+    into_grid = [o for o in own if o.split("=", 1)[0].strip().startswith("grid.")]
+    if into_grid:  # the grid is a free-form mapping: its settings are set inside it, then checked whole
+        import copy
+        import dataclasses
+
+        grid = copy.deepcopy(recipe.grid)
+        for o in into_grid:
+            key, _, value = o.partition("=")
+            *path, last = key.strip().split(".")[1:]
+            node = grid
+            for part in path:
+                node = node.setdefault(part, {})
+            try:
+                node[last] = yaml.safe_load(value)
+            except yaml.YAMLError as err:
+                raise C.ConfigError(f"{key.strip()}: not valid YAML: {C.yaml_problem(err)}") from None
+        recipe = dataclasses.replace(recipe, grid=grid)
+    rest = [o for o in own if o not in into_grid]
+    return C.apply_overrides(recipe, rest), [o for o in overrides if o not in own]  # checks in __post_init__
 
 
 def check_plan(plan: EvalPlan, corpus: str) -> None:
@@ -402,12 +425,20 @@ def check_room(recipe: Recipe, arms: dict[str, Arm]) -> None:
     check_output_folder(Path(recipe.out_dir) / recipe.name, need + MB, "results folder")
 
 
-def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False) -> list[dict]:
-    """Corpus if needed, train every arm, evaluate, write the tables. With resume, finished arms
-    and finished evaluations (same config, same checkpoint) are kept, not recomputed."""
+def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False, report: bool = True) -> list[dict]:
+    """Corpus if needed, train every arm, evaluate, write the tables and render the report
+    (tinyrnnt.lab.report). With resume, finished arms and finished evaluations (same config, same
+    checkpoint) are kept, not recomputed."""
     from tinyrnnt.lab.tables import evaluate_arms, write_tables
 
     recipe, overrides = split_overrides(read_recipe(path), list(overrides))
+    if recipe.grid:  # a grid runs its cells (finished ones are always kept) and writes grid tables
+        from tinyrnnt.lab.grid import run_grid
+
+        rows = run_grid(recipe, overrides, quiet)["rows"]
+        if report:
+            _render(Path(recipe.out_dir) / recipe.name)
+        return rows
     arms = expand_arms(recipe, overrides)
     check_room(recipe, arms)
     for corpus_of in {arm.cfg.data.corpus: arm.cfg for arm in arms.values()}.values():  # each corpus once
@@ -417,4 +448,15 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
     results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
     print(tables["markdown"])
+    if report:
+        _render(Path(recipe.out_dir) / recipe.name)
     return tables["rows"]
+
+
+def _render(folder: Path) -> None:
+    """The report of a finished results folder; prints the headline and where the report is."""
+    from tinyrnnt.lab.report import make_report
+
+    made = make_report(folder)
+    print("## Headline\n\n" + "\n".join(f"- {s}" for s in made["headline_text"]))
+    print(f"\nreport: {made['html']} (one file, opens in any browser); summary: {made['markdown']}")

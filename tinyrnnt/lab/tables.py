@@ -40,6 +40,7 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
     from tinyrnnt.lab.train import load_model, read_history
 
     results = {}
+    count, total = 0, len(arms) * len(plan.variants()) * len(plan.splits) * len(plan.list_sizes)
     for key, arm in arms.items():
         ckpt = trained[key][f"{plan.checkpoint}_checkpoint"]
         model = None
@@ -52,6 +53,7 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
             for split_name in plan.splits:
                 for n in plan.list_sizes:
                     name = f"{split_name}.n{n}" if variant == "greedy" else f"{variant}.{split_name}.n{n}"
+                    count += 1
                     kept = load_results(folder, name) if resume else None
                     if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
                             and kept[1].get("history") == history and kept[1].get("decoding") == raw:
@@ -74,9 +76,10 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
                     boost = None
                     if weight != 0:
                         boost = C.apply_overrides(dcfg, [f"boost_weight={weight}"]).boost()
+                    bar = False if quiet else f"({count}/{total}) {key} {variant} {split_name} N={n}"
                     records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
                                                 max_symbols=dcfg.max_symbols, limit=plan.limit or None,
-                                                search=dcfg.search, beam=dcfg.beam, boost=boost)
+                                                search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar)
                     summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
                                    boost_weight=weight)
                     save_results(folder, name, records, summary)
