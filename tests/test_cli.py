@@ -150,3 +150,56 @@ evaluate: {{splits: [test], list_sizes: [0]}}
     assert done.returncode == 0, done.stderr
     assert first.stat().st_mtime_ns == stamp  # the finished run was kept, not trained again
     assert (folder / "results.md").is_file()
+
+
+def test_sigterm_stops_parallel_training_workers_too(corpus, tmp_path):
+    """SIGTERM sent to the command alone (as a job scheduler does) exits 143 with one line, and the
+    training workers of a parallel recipe, which never see that signal, are stopped, not orphaned."""
+    import os
+    import signal
+    import time
+
+    recipe = tmp_path / "r.yaml"
+    recipe.write_text(f"""
+name: terminated
+out_dir: {tmp_path / 'runs'}
+controls: false
+parallel: 2
+shared:
+  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 100000, minutes: 3, validate_every_steps: 2, threads: 1, snapshot_minutes: 0}}
+runs:
+  one: {{}}
+  two: {{train: {{seed: 1}}}}
+evaluate: {{splits: [test], list_sizes: [0]}}
+""")
+    folder = tmp_path / "runs" / "terminated"
+    proc = subprocess.Popen([sys.executable, "-m", "tinyrnnt", "experiment", "--quiet", "--recipe", str(recipe)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 120
+    while not list(folder.glob("*/checkpoints/last.ckpt")) and time.time() < deadline:
+        time.sleep(0.05)
+
+    def children(pid):  # direct children, read from /proc (Linux)
+        out = []
+        for d in os.listdir("/proc"):
+            try:
+                if d.isdigit() and int(open(f"/proc/{d}/stat").read().rsplit(")", 1)[1].split()[1]) == pid:
+                    out.append(int(d))
+            except (OSError, IndexError, ValueError):
+                pass
+        return out
+
+    workers = children(proc.pid)
+    assert workers, "the recipe should be training in worker processes"
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 143, err
+    assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
+    deadline = time.time() + 30
+    while any(os.path.exists(f"/proc/{w}") and "Z" not in open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[:1]
+              for w in workers) and time.time() < deadline:
+        time.sleep(0.2)
+    assert not [w for w in workers if os.path.exists(f"/proc/{w}")
+                and open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"]

@@ -15,6 +15,7 @@ from __future__ import annotations
 import argparse
 import errno
 import json
+import signal
 import sys
 from pathlib import Path
 
@@ -252,12 +253,21 @@ def main(argv: list[str] | None = None) -> int:
         args.settings = list(args.settings) + extra  # decode.KEY=VALUE settings given after the options
     elif extra:
         parser.error(f"unrecognized arguments: {' '.join(extra)}")
+    signal.signal(signal.SIGTERM, _terminated)
     try:
         return _run(args)
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as stop:
         print("interrupted; finished runs and results are kept (continue an experiment with --resume)",
               file=sys.stderr)
-        return 130
+        return 143 if isinstance(stop, Terminated) else 130
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (a job scheduler, `kill`): handled as Ctrl-C is, so training workers stop too."""
+
+
+def _terminated(signum, frame):
+    raise Terminated()
 
 
 WRITE_ERRORS = (errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES)

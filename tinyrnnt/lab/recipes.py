@@ -355,15 +355,24 @@ def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool, resume: bool = 
 
     pending = dict(arms)
     with ProcessPoolExecutor(max_workers=parallel, mp_context=mp.get_context("spawn")) as pool:
-        running = {}
-        while pending or running:
-            for key in [k for k, a in pending.items() if a.source is None or a.source in done]:
-                if len(running) >= parallel:
-                    break
-                running[pool.submit(_train_one, ready_config(pending.pop(key), done), True, resume)] = key
-            finished, _ = wait(running, return_when=FIRST_COMPLETED)
-            for f in finished:
-                done[running.pop(f)] = f.result()
+        try:
+            running = {}
+            while pending or running:
+                for key in [k for k, a in pending.items() if a.source is None or a.source in done]:
+                    if len(running) >= parallel:
+                        break
+                    running[pool.submit(_train_one, ready_config(pending.pop(key), done), True, resume)] = key
+                finished, _ = wait(running, return_when=FIRST_COMPLETED)
+                for f in finished:
+                    done[running.pop(f)] = f.result()
+        except BaseException:
+            # subtle: a signal sent to this process alone (SIGTERM from a job scheduler, say) never
+            # reaches the workers, and leaving the pool waits for them to finish training; stop them.
+            # Their checkpoints are written whole, so --resume continues where they stood.
+            for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                proc.kill()
+            pool.shutdown(wait=False, cancel_futures=True)
+            raise
     return {key: done[key] for key in arms}
 
 
