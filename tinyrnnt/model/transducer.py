@@ -237,7 +237,8 @@ class Transducer(nn.Module):
         self.encoder = Encoder(cfg)
         self.predictor = Predictor(cfg)
         self.joiner = Joiner(self.encoder.out_dim, self.predictor.out_dim, cfg)
-        self.bias = build_biasing(bias, cfg.joiner_dim, cfg.predictor_embed) if bias is not None else None
+        self.bias = (build_biasing(bias, cfg.joiner_dim, cfg.predictor_embed, cfg.predictor_dim)
+                     if bias is not None else None)
         self.ctc_head = nn.Linear(self.encoder.out_dim, VOCAB_SIZE) if cfg.ctc_weight > 0 else None
 
     def forward(self, feats: Tensor, feat_lens: Tensor, targets: Tensor, target_lens: Tensor | None = None,
@@ -259,6 +260,8 @@ class Transducer(nn.Module):
             extra = self.bias.features(lists, targets, target_lens)
         enc, enc_lens, *first = self.encoder(feats, feat_lens, keep_first=keep_first)  # (B, T', De)
         pred = self.predictor(targets, extra.get("predictor"))  # (B, U+1, Dp)
+        if self.bias is not None and lists is not None:
+            extra = self.bias.after_predictor(extra, pred)  # features that read the predictor output
         joiner_bias = extra.get("joiner")
         if label_bias is not None:
             joiner_bias = label_bias if joiner_bias is None else joiner_bias + label_bias
