@@ -203,3 +203,27 @@ def test_bad_settings_name_the_field(options, message):
 
 def test_settings_defaults_are_valid():
     assert AttentionSettings().phrase_gate == "all"
+
+
+@pytest.mark.parametrize("kind", ["trie", "attention", "trie+attention"])
+def test_beam_search_keeps_apart_equal_prefixes_of_utterances_with_other_lists(kind):
+    """The same audio twice in one batch, the second late by two encoder frames, with different lists:
+    each decodes as it does alone (the predictor's cache of prefixes must not hand one utterance's
+    biased state to the other when the second reaches a prefix the first reached earlier)."""
+    torch.manual_seed(0)
+    model = Transducer(SMALL, BiasConfig(kind=kind, inject="both")).eval()
+    with torch.no_grad():  # a model that writes several tokens (as in tests/test_beam.py), strongly biased
+        model.joiner.out.weight.mul_(4)
+        model.joiner.out.bias[1:] = torch.randn(VOCAB_SIZE - 1) * 2
+        model.joiner.out.bias[0] = -2
+        for p in model.bias.parameters():
+            p.mul_(3)
+    first = torch.randn(160, 80)
+    x = torch.stack([torch.cat([first, torch.zeros(16, 80)]), torch.cat([torch.zeros(16, 80), first])])
+    xl = torch.tensor([176, 176])
+    lists = [["kell", "kelso", "a", "mora"], ["maren", "oske", "bell"]]
+    together = beam_search(model, x, xl, lists, beam=3)
+    for b in range(2):
+        alone = beam_search(model, x[b: b + 1], xl[b: b + 1], [lists[b]], beam=3)[0]
+        assert [t for t, _ in alone] == [t for t, _ in together[b]]
+        assert [s for _, s in alone] == pytest.approx([s for _, s in together[b]], rel=1e-5)
