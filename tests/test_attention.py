@@ -227,3 +227,76 @@ def test_beam_search_keeps_apart_equal_prefixes_of_utterances_with_other_lists(k
         alone = beam_search(model, x[b: b + 1], xl[b: b + 1], [lists[b]], beam=3)[0]
         assert [t for t, _ in alone] == [t for t, _ in together[b]]
         assert [s for _, s in alone] == pytest.approx([s for _, s in together[b]], rel=1e-5)
+
+
+def test_recipe_keeps_the_trie_benchmark_arms_and_gives_the_new_arms_their_schedule():
+    """attention_vs_trie's baseline and trie runs train exactly as trie_vs_baseline's (so the benchmark
+    may reuse them), and the new arms share the trie arm's steps, schedule and training lists."""
+    from tinyrnnt import config as C
+    from tinyrnnt.lab.attentionbench import _comparable
+    from tinyrnnt.lab.recipes import expand_arms, read_recipe
+
+    ours = expand_arms(read_recipe("attention_vs_trie"))
+    trie = expand_arms(read_recipe("trie_vs_baseline"))
+    for key in ("baseline", "trie", "trie_control"):
+        assert _comparable(C.to_dict(ours[key].cfg)) == _comparable(C.to_dict(trie[key].cfg))
+    for key in ("attention", "trie_attention"):
+        assert ours[key].control == "trie_control" and ours[key].source == "baseline"
+        assert C.to_dict(ours[key].cfg.train) == C.to_dict(ours["trie"].cfg.train)
+        assert ours[key].cfg.bias.sampling == ours["trie"].cfg.bias.sampling
+
+
+@pytest.fixture(scope="module")
+def tiny_run(tmp_path_factory):
+    """A tiny corpus and an attention model trained for 2 steps (settings of tests/test_cli.py)."""
+    from test_cli import SMALL, TINY
+
+    from tinyrnnt.cli import main
+    from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
+
+    root = tmp_path_factory.mktemp("attention")
+    build_corpus(CorpusConfig(seed=2, **TINY), root / "corpus", quiet=True)
+    assert main(["train", "--quiet", f"data.corpus={root / 'corpus'}", f"run_dir={root / 'run'}",
+                 "bias.kind=trie+attention", "bias.options={phrase_gate: prefix}"] + SMALL) == 0
+    return root
+
+
+def test_picture_command_writes_the_heatmap_and_the_lattice(tiny_run, capsys):
+    import json
+
+    from tinyrnnt.cli import main
+
+    ckpt = tiny_run / "run" / "checkpoints" / "last.ckpt"
+    assert main(["picture", str(ckpt), "--list-size", "10", "--out", str(tiny_run / "pictures")]) == 0
+    facts = json.loads(next((tiny_run / "pictures").glob("*.pictures.json")).read_text())
+    assert facts["list_size"] == 10 and len(facts["files"]) == 2
+    assert all(open(f, "rb").read(8) == b"\x89PNG\r\n\x1a\n" for f in facts["files"])  # PNG signature
+    assert facts["attention_entries_shown"][0] == "(no bias)" and len(facts["attention_entries_shown"]) == 11
+    capsys.readouterr()
+    assert main(["picture", str(ckpt), "--utterance", "nobody", "--out", str(tiny_run / "pictures")]) == 2
+    assert "is not in split 'test_unseen'" in capsys.readouterr().err
+
+
+def test_cost_measurement_times_every_size_and_lists_grow_past_the_corpus(tiny_run):
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.lab.cost import largest_list, measure_method, timing_list
+
+    split = CorpusSplit(str(tiny_run / "corpus"), "test_unseen")
+    big = largest_list(split) + 50
+    words = timing_list(split, 3, big)
+    assert len(words) == len(set(words)) == big
+    assert words[:10] == split.biasing_list(3, 10)  # the corpus list first, its rare words leading
+    r = measure_method("trie+attention", str(tiny_run / "run" / "checkpoints" / "last.ckpt"),
+                       str(tiny_run / "corpus"), (5, big), utterances=2, train_batch=2, train_repeats=1)
+    assert set(r["decode_ms"]) == set(r["train_ms"]) == {"5", str(big)}
+    assert all(v > 0 for v in [*r["decode_ms"].values(), *r["train_ms"].values()])
+    assert r["peak_mb"] >= r["loaded_mb"] > 0
+
+
+def test_bench_lists_the_attention_benchmark(capsys):
+    from tinyrnnt.bench import main
+
+    with pytest.raises(SystemExit):
+        main(["--help"])
+    text = capsys.readouterr().out
+    assert "attention" in text and "--sizes" in text and "--trie-run-dir" in text
