@@ -33,10 +33,9 @@ def _log(msg: str) -> None:
 def _comparable(config: dict) -> dict:
     """A saved config as it trains, with today's defaults for settings added since; where it lives,
     its name and its start checkpoint (a path) left out."""
-    from tinyrnnt import config as C
-    from tinyrnnt.experiment import experiment_from_dict
+    from tinyrnnt.experiment import with_defaults
 
-    d = C.to_dict(experiment_from_dict(config))
+    d = with_defaults(config)
     d.pop("run_dir"), d.pop("name"), d.pop("decode")
     d["train"] = {k: v for k, v in d["train"].items() if k != "init_from"}
     d["data"] = {k: v for k, v in d["data"].items() if k != "corpus"}
