@@ -35,9 +35,13 @@ def _targets(texts):
     return targets, torch.tensor([len(x) for x in ids])
 
 
-def _module(kind, gate="all", encoder="conv", seed=0):
+ENC = 40  # encoder output size of the modules built here
+
+
+def _module(kind, gate="all", encoder="conv", seed=0, query="predictor"):
     torch.manual_seed(seed)
-    return build_biasing(BiasConfig(kind=kind, options={"phrase_gate": gate, "encoder": encoder}), 24, 16, PRED).eval()
+    options = {"phrase_gate": gate, "encoder": encoder, "query": query}
+    return build_biasing(BiasConfig(kind=kind, options=options), 24, 16, PRED, ENC).eval()
 
 
 def _attention(module):
@@ -194,11 +198,13 @@ def test_characters_outside_the_inventory_are_refused_where_lists_are_read(entry
     ({"encoder": "transformer"}, "encoder must be one of"),
     ({"width": 4}, "width must be odd"),
     ({"dim": 0}, "dim must be above 0"),
-    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, phrase_gate, width"),
+    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, phrase_gate, query, width"),
+    ({"query": "encoder", "phrase_gate": "prefix"}, "needs the label history"),
+    ({"query": "joiner"}, "query must be one of"),
 ])
 def test_bad_settings_name_the_field(options, message):
     with pytest.raises(ConfigError, match=message):
-        build_biasing(BiasConfig(kind="attention", options=options), 24, 16, PRED)
+        build_biasing(BiasConfig(kind="attention", options=options), 24, 16, PRED, ENC)
 
 
 def test_settings_defaults_are_valid():
@@ -300,3 +306,38 @@ def test_bench_lists_the_attention_benchmark(capsys):
         main(["--help"])
     text = capsys.readouterr().out
     assert "attention" in text and "--sizes" in text and "--trie-run-dir" in text
+
+
+@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("case", sorted(EDGE_LISTS))
+def test_encoder_query_frame_features_equal_in_training_and_decoding(kind, case):
+    """query: encoder: the feature per frame (B, T', Dj) of training equals what the decoder's
+    frames() gives each row; with an empty list it is the no-bias context at every frame."""
+    module = _module(kind, query="encoder", seed=6)
+    lists = [EDGE_LISTS[case], ["kell", "maren"], []]
+    targets, lens = _targets(TEXTS)
+    enc = torch.randn(3, 9, ENC)
+    train = module.after_encoder(module.features(lists, targets, lens), enc, torch.tensor([9, 7, 5]))
+    assert "joiner" not in module.after_predictor(train, torch.randn(3, targets.shape[1] + 1, PRED)) \
+        or kind == "trie+attention"  # the trie's own joiner feature only
+    decoded = module.decoder(lists).frames(enc)
+    assert torch.allclose(train["encoder"], decoded, atol=1e-5)
+    att = _attention(module)
+    empty = att.to_joiner(att.no_bias)  # attention on the no-bias entry alone gives its own vector
+    assert torch.allclose(decoded[2], empty.expand_as(decoded[2]), atol=1e-5)
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_encoder_query_batch_of_one_equals_batched_decoding(kind):
+    torch.manual_seed(7)
+    model = Transducer(SMALL, BiasConfig(kind=kind, options={"query": "encoder"})).eval()
+    lists = [["kell", "kelso", "a"], [], ["maren"]]
+    x, xl = torch.randn(3, 60, 80), torch.tensor([60, 52, 44])
+    together = greedy_decode(model, x, xl, biaser=model.bias.decoder(lists))
+    beams = beam_search(model, x, xl, lists, beam=3)
+    for b in range(3):
+        one, n = x[b: b + 1, : int(xl[b])], xl[b: b + 1]
+        assert greedy_decode(model, one, n, biaser=model.bias.decoder([lists[b]]))[0] == together[b]
+        alone = beam_search(model, one, n, [lists[b]], beam=3)[0]
+        assert [t for t, _ in alone] == [t for t, _ in beams[b]]
+        assert [s for _, s in alone] == pytest.approx([s for _, s in beams[b]], rel=1e-3)

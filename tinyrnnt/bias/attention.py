@@ -1,13 +1,16 @@
-"""Attention biasing over the list, and the trie cue and attention together, as plug-ins.
+"""Attention biasing over the list, as a plug-in.
 
 Attention over phrase vectors (CLAS, Pundak et al., SLT 2018; the attention
 module of Jain et al., Interspeech 2020): every listed entry's tokens become
 one vector (the phrase encoder: token embeddings, then a convolution with
 max-pooling, or a bidirectional LSTM with mean-pooling), and a learned
 "no-bias" entry is put first so the model can attend to nothing. The query is
-the predictor output at each label position; scaled dot-product attention
-(Vaswani et al., 2017) over the entries gives a context vector, projected into
-the joiner's predictor side. Phrase vectors are computed once per list (a
+the predictor output at each label position (`query: predictor`, as in CLAS);
+scaled dot-product attention (Vaswani et al., 2017) over the entries gives a
+context vector, projected into the joiner's predictor side. With `query:
+encoder` the query is the encoder output at each frame instead and the context
+enters the joiner's encoder side (one context per frame, computed once per
+utterance before the search). Phrase vectors are computed once per list (a
 batch encodes its distinct words once) and reused at every decoding step.
 
 Phrase gate (`phrase_gate`, the prefix conditioning of CLAS 2018 applied to the
@@ -15,16 +18,12 @@ entry's own tokens): "all" lets every entry be attended to everywhere;
 "prefix" only entries that the current partial word (tokens since the last
 word boundary, empty at a word start) is a prefix of, so at a word start all
 entries; "started" only entries whose first tokens the hypothesis has already
-written, so at a word start none (the no-bias entry only). An entry with a
+written, so at a word start none (the no-bias entry only). The gate needs the
+label history, so it goes with the predictor query only. An entry with a
 space (a phrase of several words) is followed across its spaces; a match
 restarts at every word boundary. The no-bias entry is never masked.
 
-"trie+attention" holds a trie cue (tinyrnnt.bias.trie_cue, placed by
-`bias.inject` and the other trie settings) and an attention module and sums
-their joiner features; the token boost is the trie's.
-
-Deliberately not here: the encoder state as query (it needs an encoder-side
-hook in the joiner, which the interface does not have), multi-head attention.
+Deliberately not here: multi-head attention, a query from both states.
 """
 
 from __future__ import annotations
@@ -40,6 +39,7 @@ from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE, encode
 
 ENCODERS = ("conv", "lstm")
 GATES = ("all", "prefix", "started")
+QUERIES = ("predictor", "encoder")
 MASK_KEY, ROW_KEY = "attention_mask", "attention_rows"  # the module's own feature entries
 
 
@@ -52,16 +52,21 @@ class AttentionSettings:
     encoder: str = "conv"  # phrase encoder: "conv" (convolution + max-pool) or "lstm" (bidirectional + mean-pool)
     width: int = 3  # convolution width in tokens (odd)
     phrase_gate: str = "all"  # which entries may be attended to: all | prefix | started (module docstring)
+    query: str = "predictor"  # whose state asks: the predictor's (per label position) or the encoder's (per frame)
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
 
         require(self, "bias.options", positive=("dim", "embed", "width"))
-        for name, value, choices in (("encoder", self.encoder, ENCODERS), ("phrase_gate", self.phrase_gate, GATES)):
+        for name, value, choices in (("encoder", self.encoder, ENCODERS), ("phrase_gate", self.phrase_gate, GATES),
+                                     ("query", self.query, QUERIES)):
             if value not in choices:
                 raise ConfigError(f"bias.options.{name} must be one of {list(choices)}, got {value!r}")
         if self.width % 2 == 0:
             raise ConfigError(f"bias.options.width must be odd (the convolution keeps the length), got {self.width}")
+        if self.query == "encoder" and self.phrase_gate != "all":
+            raise ConfigError(f"bias.options.phrase_gate {self.phrase_gate!r} needs the label history, so "
+                              "query: predictor; with query: encoder it must be 'all'")
         if self.encoder == "lstm" and self.dim % 2:
             raise ConfigError(f"bias.options.dim must be even with the lstm encoder (two directions), got {self.dim}")
 
@@ -135,12 +140,16 @@ class Memory:
         self.ids, self.lengths = token_table(list(words))  # (W, L), (W,)
 
 
+@register("attention")
 class ListAttention(BiasingInput):
-    def __init__(self, cfg, joiner_dim: int, embed_dim: int, pred_dim: int | None = None):
-        super().__init__(cfg, joiner_dim, embed_dim, pred_dim)
-        if pred_dim is None:
-            raise ValueError("attention biasing needs the predictor output size (build_biasing's pred_dim)")
+    def __init__(self, cfg, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                 enc_dim: int | None = None):
+        super().__init__(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
         o = self.opts = read_settings(cfg.options)
+        asker = pred_dim if o.query == "predictor" else enc_dim
+        if asker is None:
+            raise ValueError(f"attention biasing with query {o.query!r} needs that state's size "
+                             f"(build_biasing's {'pred_dim' if o.query == 'predictor' else 'enc_dim'})")
         self.embed = nn.Embedding(VOCAB_SIZE, o.embed, padding_idx=BLANK)  # padding embeds to zeros
         if o.encoder == "conv":
             self.conv = nn.Conv1d(o.embed, o.dim, o.width, padding=o.width // 2)
@@ -149,7 +158,7 @@ class ListAttention(BiasingInput):
 
             self.lstm = RecurrentStack(o.embed, o.dim // 2, 1, True, 0.0)
         self.no_bias = nn.Parameter(torch.randn(o.dim) * 0.1)  # the "attend to nothing" entry
-        self.query = nn.Linear(pred_dim, o.dim)
+        self.query = nn.Linear(asker, o.dim)
         self.key = nn.Linear(o.dim, o.dim)
         self.to_joiner = nn.Linear(o.dim, joiner_dim)
 
@@ -211,6 +220,8 @@ class ListAttention(BiasingInput):
         return {MASK_KEY: self.gate_masks(mem, targets), ROW_KEY: (keys[mem.which], values[mem.which])}
 
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
+        if self.opts.query != "predictor":
+            return features
         keys, values = features[ROW_KEY]
         context, _ = self.attend(self.query(pred), keys, values, features[MASK_KEY])  # (..., Da)
         out = dict(features)
@@ -218,11 +229,21 @@ class ListAttention(BiasingInput):
         out["joiner"] = j if features.get("joiner") is None else features["joiner"] + j
         return out
 
+    def after_encoder(self, features: dict, enc: Tensor, enc_lens: Tensor) -> dict:
+        if self.opts.query != "encoder":
+            return features
+        keys, values = features[ROW_KEY]  # (B, N+1, Da)
+        mask = features[MASK_KEY][:, :1].expand(-1, enc.shape[1], -1)  # (B, T', N+1), no gate with this query
+        return {**features, "encoder": self.frame_context(enc, keys, values, mask)}
+
+    def frame_context(self, enc: Tensor, keys: Tensor, values: Tensor, mask: Tensor) -> Tensor:
+        """The encoder-side feature (B, T', Dj) of encoder outputs (B, T', De)."""
+        context, _ = self.attend(self.query(enc), keys, values, mask)  # (B, T', Da)
+        return self.to_joiner(context)
+
     def decoder(self, lists) -> "AttentionBiaser":
         return AttentionBiaser(self, lists)
 
-
-register("attention")(ListAttention)
 
 
 class AttentionBiaser(Biaser):
@@ -268,52 +289,18 @@ class AttentionBiaser(Biaser):
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
         return self.module.after_predictor(features, pred)
 
+    def frames(self, enc: Tensor) -> Tensor | None:
+        if self.module.opts.query != "encoder":
+            return None
+        which = self.mem.which[: enc.shape[0]]  # (R,): rows in the order given to decoder()
+        valid = torch.cat([torch.ones(len(which), 1, dtype=torch.bool), self.mem.valid[which]], dim=1)
+        keys, values = (self.keys, self.values) if self.shared else (self.keys[which], self.values[which])
+        if self.shared:  # (N+1, Da) for every row
+            keys, values = keys.expand(len(which), -1, -1), values.expand(len(which), -1, -1)
+        return self.module.frame_context(enc, keys, values, valid[:, None].expand(-1, enc.shape[1], -1))
+
     def weights(self, state, pred: Tensor) -> Tensor:
         """Attention weights (n, N+1) of each row, no-bias entry first (for pictures)."""
         f = self.features(state)
         keys, values = f[ROW_KEY]
         return self.module.attend(self.module.query(pred), keys, values, f[MASK_KEY])[1]
-
-
-@register("trie+attention")
-class TrieAndAttention(BiasingInput):
-    """The trie cue and attention over the list together; their joiner features add up."""
-
-    def __init__(self, cfg, joiner_dim: int, embed_dim: int, pred_dim: int | None = None):
-        from tinyrnnt.bias.trie_cue import TrieCue
-
-        super().__init__(cfg, joiner_dim, embed_dim, pred_dim)
-        self.trie = TrieCue(cfg, joiner_dim, embed_dim, pred_dim)
-        self.attention = ListAttention(cfg, joiner_dim, embed_dim, pred_dim)
-
-    def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
-        return {**self.trie.features(lists, targets, target_lens),
-                **self.attention.features(lists, targets, target_lens)}
-
-    def after_predictor(self, features: dict, pred: Tensor) -> dict:
-        return self.attention.after_predictor(features, pred)
-
-    def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor) -> Tensor:
-        return self.trie.token_scores(hidden, feature, logits)
-
-    def decoder(self, lists) -> "BothBiaser":
-        return BothBiaser(self.trie.decoder(lists), self.attention.decoder(lists))
-
-
-class BothBiaser(Biaser):
-    """State: the trie node first, then the attention state's tensors (one flat tuple, rows first)."""
-
-    def __init__(self, trie: Biaser, attention: AttentionBiaser):
-        self.trie, self.attention = trie, attention
-
-    def start(self, B: int):
-        return (self.trie.start(B), *self.attention.start(B))
-
-    def advance(self, state, tokens: Tensor, emit: Tensor):
-        return (self.trie.advance(state[0], tokens, emit), *self.attention.advance(state[1:], tokens, emit))
-
-    def features(self, state) -> dict:
-        return {**self.trie.features(state[0]), **self.attention.features(state[1:])}
-
-    def after_predictor(self, features: dict, pred: Tensor) -> dict:
-        return self.attention.after_predictor(features, pred)

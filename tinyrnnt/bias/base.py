@@ -30,6 +30,10 @@ while decoding, and returns the dictionary the joiner reads. The model calls it
 once the predictor has run, so a "predictor" entry cannot depend on `pred`
 (the default returns `features` unchanged, as the trie cue does). Greedy and
 beam search call the Biaser's hook with each row's predictor output.
+Likewise `after_encoder(features, enc, enc_lens)` (training) may add
+"encoder": (B, T', Dj), a feature per encoder frame added to the joiner's
+encoder side (attention with the encoder state as its query); while decoding,
+`Biaser.frames(enc)` gives it per row, (rows, T', Dj), or None.
 
 A module's own settings live in `bias.options` (a mapping the module checks
 itself, e.g. through its own dataclass and `config.from_dict`), so a new idea
@@ -50,7 +54,7 @@ INJECTION_POINTS = ("joiner", "predictor", "both")
 BOOST_MODES = ("add", "mix")
 RESPELL_LETTERS = ("seen_pairs", "any")
 REGISTRY: dict[str, type["BiasingInput"]] = {}
-BUILT_IN = ("tinyrnnt.bias.trie_cue", "tinyrnnt.bias.attention")  # imported before a kind is looked up
+BUILT_IN = ("tinyrnnt.bias.trie_cue", "tinyrnnt.bias.attention", "tinyrnnt.bias.trie_and_attention")  # imported before a kind is looked up
 
 
 @dataclass
@@ -124,10 +128,11 @@ def register(name: str):
     return wrap
 
 
-def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int,
-                  pred_dim: int | None = None) -> "BiasingInput | None":
+def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                  enc_dim: int | None = None) -> "BiasingInput | None":
     """The biasing input `cfg.kind`, sized for a joiner of `joiner_dim`, predictor input embeddings
-    of `embed_dim` and (for inputs that read it) predictor outputs of `pred_dim`."""
+    of `embed_dim` and (for inputs that read them) predictor outputs of `pred_dim` and encoder
+    outputs of `enc_dim`."""
     import importlib
 
     if cfg.kind == "none":
@@ -147,7 +152,7 @@ def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int,
         raise ValueError(f"bias.inject must be one of {INJECTION_POINTS}, got {cfg.inject!r}")
     if cfg.boost_mode not in BOOST_MODES:
         raise ValueError(f"bias.boost_mode must be one of {BOOST_MODES}, got {cfg.boost_mode!r}")
-    return REGISTRY[cfg.kind](cfg, joiner_dim, embed_dim, pred_dim=pred_dim)
+    return REGISTRY[cfg.kind](cfg, joiner_dim, embed_dim, pred_dim=pred_dim, enc_dim=enc_dim)
 
 
 def load_built_in() -> list[str]:
@@ -162,10 +167,11 @@ def load_built_in() -> list[str]:
 class BiasingInput(nn.Module):
     name = "abstract"
 
-    def __init__(self, cfg: BiasConfig, joiner_dim: int, embed_dim: int, pred_dim: int | None = None):
+    def __init__(self, cfg: BiasConfig, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                 enc_dim: int | None = None):
         super().__init__()
         self.cfg = cfg
-        self.joiner_dim, self.embed_dim, self.pred_dim = joiner_dim, embed_dim, pred_dim
+        self.joiner_dim, self.embed_dim, self.pred_dim, self.enc_dim = joiner_dim, embed_dim, pred_dim, enc_dim
 
     def features(self, lists: list[list[str]], targets: Tensor, target_lens: Tensor) -> dict[str, Tensor]:
         raise NotImplementedError
@@ -175,6 +181,11 @@ class BiasingInput(nn.Module):
 
     def after_predictor(self, features: dict[str, Tensor], pred: Tensor) -> dict[str, Tensor]:
         """Features once the predictor output `pred` (B, U+1, Dp) is known; default: unchanged."""
+        return features
+
+    def after_encoder(self, features: dict[str, Tensor], enc: Tensor, enc_lens: Tensor) -> dict[str, Tensor]:
+        """Features once the encoder output `enc` (B, T', De) is known; may add "encoder"
+        (B, T', Dj); default: unchanged."""
         return features
 
     def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor) -> Tensor:
@@ -219,3 +230,8 @@ class Biaser:
         """Per row, as BiasingInput.after_predictor: `features` from `features(state)`, `pred`
         (rows, Dp) each row's predictor output for its current history; default: unchanged."""
         return features
+
+    def frames(self, enc: Tensor) -> Tensor | None:
+        """(rows, T', Dj) added to the joiner's encoder side of each row, from the encoder output
+        (rows, T', De) of each row's utterance; default None (nothing)."""
+        return None

@@ -179,6 +179,7 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
         booster = Booster(row_lists, boost.get("weight", 0.0), boost.get("where", "anywhere"), row_classes,
                           boost.get("triggers"))
     search = _Search(model, biaser, booster, K)
+    frames = biaser.frames(enc.index_select(0, order).repeat_interleave(K, dim=0)) if biaser is not None else None
 
     R = B * K
     score = torch.full((R,), NEG)
@@ -206,7 +207,10 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
                 finished[u] = search.take(rows, torch.arange(u * K, (u + 1) * K))
             rows = search.take(rows, torch.arange(now * K))
             live = now
-        rows = _frame(search, rows, enc_p[:live, t], live, K, max_symbols)
+        enc_rows = enc_p[:live, t].repeat_interleave(K, dim=0)  # (live*K, Dj)
+        if frames is not None:  # (R, T', Dj): a biasing feature per frame and row
+            enc_rows = enc_rows + frames[: live * K, t]
+        rows = _frame(search, rows, enc_rows, live, K, max_symbols)
     for u in range(live):
         finished[u] = search.take(rows, torch.arange(u * K, (u + 1) * K))
 
@@ -219,10 +223,10 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
     return out
 
 
-def _frame(search: _Search, rows: _Rows, enc_t: Tensor, U: int, K: int, max_symbols: int) -> _Rows:
-    """One encoder frame for U utterances (rows U*K): expand, end with blank, merge, keep K."""
+def _frame(search: _Search, rows: _Rows, enc_rows: Tensor, U: int, K: int, max_symbols: int) -> _Rows:
+    """One encoder frame for U utterances (rows U*K, their encoder sides enc_rows (U*K, Dj)): expand,
+    end with blank, merge, keep K."""
     m, booster = search.model, search.booster
-    enc_rows = enc_t.repeat_interleave(K, dim=0)  # (U*K, Dj)
     ends: list[_Rows] = []
     a = rows
     for s in range(max_symbols + 1):

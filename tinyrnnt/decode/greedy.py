@@ -38,6 +38,9 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
     enc, enc_lens = model.encoder(feats, feat_lens)  # (B, T', De)
     B, T, _ = enc.shape
     enc_p = model.joiner.enc_proj(enc)  # (B, T', Dj)
+    frames = biaser.frames(enc) if biaser is not None else None  # (B, T', Dj) or None
+    if frames is not None:
+        enc_p = enc_p + frames
     tokens = torch.full((B, 1), BLANK, dtype=torch.long, device=feats.device)
     bstate = biaser.start(B) if biaser is not None else None
     extra = biaser.features(bstate) if biaser is not None else {}

@@ -5,8 +5,9 @@ its own hypothesis as the label history (decode-time features equal training
 features for the same history, tests/test_attention.py), the pictures show
 
 - ID.attention.png: the attention weights over the listed words (the no-bias
-  entry and the entries that ever get the most weight) against output steps,
-  for a model with attention over the list;
+  entry and the entries that ever get the most weight) against output steps
+  (against encoder frames for the encoder query), for a model with attention
+  over the list;
 - ID.lattice.png: over encoder frames x output positions, the probability of
   emitting the hypothesis's next token, with the output positions where the
   trie cue is active (the partial word is on a path of the list's prefix tree)
@@ -110,19 +111,25 @@ def utterance_pictures(checkpoint: str, split_name: str, out_dir: str | Path, ut
         from tinyrnnt.bias.attention import MASK_KEY, ROW_KEY
 
         feats = model.bias.features(batch["lists"], targets, lens)
-        pred = model.predictor(targets, feats.get("predictor"))  # (1, U+1, Dp)
         keys, values = feats[ROW_KEY]
-        _, w = att.attend(att.query(pred), keys, values, feats[MASK_KEY])  # (1, U+1, N+1)
+        if att.opts.query == "predictor":  # one query per output step
+            asker = model.predictor(targets, feats.get("predictor"))  # (1, U+1, Dp)
+            mask, rows, row_names = feats[MASK_KEY], "output step (label history)", labels
+        else:  # one query per encoder frame
+            asker = model.encoder(batch["feats"], batch["feat_lens"])[0]  # (1, T', De)
+            mask = feats[MASK_KEY][:, :1].expand(-1, asker.shape[1], -1)
+            rows, row_names = "encoder frame", [str(t) for t in range(asker.shape[1])]
+        _, w = att.attend(att.query(asker), keys, values, mask)  # (1, rows, N+1)
         w = w[0]
         top = (w[:, 1:].amax(0).argsort(descending=True)[:SHOWN] + 1).tolist() if len(words) else []
         cols = [0] + top
         names = ["(no bias)"] + [words[c - 1] for c in top]
-        fig, ax = plt.subplots(figsize=(max(6, 0.3 * len(cols) + 2), max(4, 0.2 * len(labels) + 1.5)))
+        fig, ax = plt.subplots(figsize=(max(6, 0.3 * len(cols) + 2), max(4, 0.2 * len(row_names) + 1.5)))
         im = ax.imshow(w[:, cols].numpy(), aspect="auto", cmap="viridis", vmin=0, vmax=1)
         ax.set_xticks(range(len(cols)), names, rotation=70, fontsize=7)
-        ax.set_yticks(range(len(labels)), labels, fontsize=7)
+        ax.set_yticks(range(len(row_names)), row_names, fontsize=7)
         ax.set_xlabel(f"listed entries (the {len(top)} with the most weight of {len(words)})")
-        ax.set_ylabel("output step (label history)")
+        ax.set_ylabel(rows)
         fig.colorbar(im, ax=ax, fraction=0.04)
         ax.set_title(f"{uid}: attention weights over the list", fontsize=9)
         path = out / f"{uid}.attention.png"
