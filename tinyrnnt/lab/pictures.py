@@ -92,14 +92,17 @@ def utterance_pictures(checkpoint: str, split_name: str, out_dir: str | Path, ut
     single = [w for w in words if " " not in w]
     cue = training_cue(targets, lens, [PrefixTree(single)], word_start)[0]  # (U+1, V)
     active = (cue.sum(-1) > 0).tolist()
-    fig, ax = plt.subplots(figsize=(max(6, 0.22 * len(labels) + 2), 5))
-    ax.imshow(emit.T.numpy(), origin="lower", aspect="auto", cmap="magma", vmin=0, vmax=1)
+    T = emit.shape[0]
+    fig, ax = plt.subplots(figsize=(max(6, 0.25 * T + 2.5), max(4, 0.16 * len(labels) + 1.5)))
+    im = ax.imshow(emit.T.numpy(), origin="lower", aspect="auto", cmap="magma", vmin=0, vmax=1)
+    fig.colorbar(im, ax=ax, fraction=0.04)
     ax.set_xlabel("encoder frame")
     ax.set_ylabel("output position (label history)")
     ax.set_yticks(range(len(labels)), labels, fontsize=7)
     for u, on in enumerate(active):
         if on:
-            ax.plot([-1.5], [u], marker="s", color="tab:cyan", ms=4, clip_on=False)  # left of frame 0
+            ax.plot([-0.5 - 0.02 * T], [u], marker="s", color="tab:cyan", ms=4, clip_on=False)  # left of frame 0
+    ax.set_xlim(-0.5, T - 0.5)
     ax.set_title(f"{uid}: P(next token) per frame and position; cyan = trie cue active", fontsize=9)
     path = out / f"{uid}.lattice.png"
     _save(fig, path)
