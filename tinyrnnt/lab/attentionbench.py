@@ -84,6 +84,12 @@ def new_arms(args, arms, baseline_ckpt: str) -> dict[str, str]:
     return {k: done[k]["last_checkpoint"] for k in NEW_ARMS}
 
 
+def _identity(ckpt: str) -> str:
+    """A checkpoint's path and modification time: results of an older file at the same path are stale."""
+    p = Path(ckpt).resolve()
+    return f"{p}@{p.stat().st_mtime_ns}"
+
+
 def accuracy(args, checkpoints: dict[str, str]) -> dict:
     """Greedy decoding of test_unseen at N = 100 and test with no list, every arm; results saved in
     RUN_DIR/results/ARM/ (read back when present and the checkpoint is the same)."""
@@ -101,11 +107,11 @@ def accuracy(args, checkpoints: dict[str, str]) -> dict:
         for split_name, n in (("test_unseen", 100), ("test", 0)):
             folder, name = Path(args.run_dir) / "results" / key, f"{split_name}.n{n}"
             saved = load_results(folder, name)
-            if saved is None or saved[1].get("checkpoint") != str(Path(ckpt).resolve()):
+            if saved is None or saved[1].get("checkpoint") != _identity(ckpt):
                 model = model or load_model(ckpt)[0]
                 records, summary = evaluate(model, CorpusSplit(args.corpus, split_name), list_size=n,
                                             limit=args.limit or None)
-                summary["checkpoint"] = str(Path(ckpt).resolve())
+                summary["checkpoint"] = _identity(ckpt)
                 save_results(folder, name, records, summary)
                 saved = records, summary
             records, summary = saved
