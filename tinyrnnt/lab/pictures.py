@@ -99,9 +99,12 @@ def utterance_pictures(checkpoint: str, split_name: str, out_dir: str | Path, ut
     ax.set_xlabel("encoder frame")
     ax.set_ylabel("output position (label history)")
     ax.set_yticks(range(len(labels)), labels, fontsize=7)
-    for u, on in enumerate(active):
+    for label, on in zip(ax.get_yticklabels(), active):  # the positions where the trie cue is active
         if on:
-            ax.plot([-0.5 - 0.02 * T], [u], marker="s", color="tab:cyan", ms=4, clip_on=False)  # left of frame 0
+            label.set_color("tab:cyan")
+            label.set_fontweight("bold")
+    on_rows = [u for u, on in enumerate(active) if on]
+    ax.scatter([-0.5] * len(on_rows), on_rows, marker=">", s=18, color="tab:cyan", clip_on=False, zorder=3)
     ax.set_xlim(-0.5, T - 0.5)
     ax.set_title(f"{uid}: P(next token) per frame and position; cyan = trie cue active", fontsize=9)
     path = out / f"{uid}.lattice.png"
