@@ -4,15 +4,14 @@ import numpy as np
 import pytest
 import torch
 
-from tinyrnnt.bias.base import REGISTRY, BiasConfig, ListSampling, build_biasing
+from tinyrnnt.bias.base import BiasConfig, ListSampling, build_biasing, load_built_in
 from tinyrnnt.bias.sampler import TrainingLists
 from tinyrnnt.decode.greedy import greedy_decode
 from tinyrnnt.model.transducer import ModelConfig, Transducer
 from tinyrnnt.text import SPACE, VOCAB_SIZE, encode
 
 SMALL = ModelConfig(encoder_dim=32, predictor_dim=32, predictor_embed=16, joiner_dim=24, encoder_layers=2)
-build_biasing(BiasConfig(kind="trie"), 8, 8)  # registers the built-in inputs
-KINDS = sorted(REGISTRY)
+KINDS = load_built_in()  # every registered biasing input
 LISTS = [["kell", "kelso", "a"], [], ["maren"]]
 TEXTS = ["call kelso a kell", "call maren", "maren kellx a"]
 
@@ -36,7 +35,7 @@ def test_zero_output_weights_give_the_baseline_logits(kind, inject, token_boost,
     plain = Transducer(SMALL).eval()
     plain.load_state_dict({k: v for k, v in biased.state_dict().items() if not k.startswith("bias.")})
     for name, p in biased.bias.named_parameters():
-        if name.startswith("to_"):
+        if any(part.startswith("to_") for part in name.split(".")):  # output layers, also of inner modules
             torch.nn.init.zeros_(p)
     targets, lens = _batch()
     x, xl = torch.randn(3, 60, 80), torch.tensor([60, 50, 40])
@@ -63,37 +62,53 @@ def test_token_boost_raises_exactly_the_cued_tokens():
     assert torch.allclose(boosted - plain, 2.0 * cue[:, None].expand_as(plain), atol=1e-5)
 
 
+PRED_DIM = 20  # predictor output size of the modules built here
+FEATURES = ("joiner", "predictor", "logits")  # what the model reads
+
+
+def _features(module, lists, targets, lens, pred):
+    """Training features, given the predictor output `pred` (B, U+1, Dp) for modules that read it."""
+    return module.after_predictor(module.features(lists, targets, lens), pred)
+
+
 @pytest.mark.parametrize("kind", KINDS)
 @pytest.mark.parametrize("inject", ["joiner", "predictor"])
 def test_decode_time_features_equal_training_features(kind, inject):
     torch.manual_seed(1)
-    module = build_biasing(BiasConfig(kind=kind, inject=inject), 24, 16).eval()
+    module = build_biasing(BiasConfig(kind=kind, inject=inject, token_boost=True), 24, 16, PRED_DIM).eval()
     targets, lens = _batch()
-    train_f = module.features(LISTS, targets, lens)[inject]  # (B, U+1, D)
+    pred = torch.randn(3, targets.shape[1] + 1, PRED_DIM)  # the predictor output at every position
+    train_f = _features(module, LISTS, targets, lens, pred)
     dec = module.decoder(LISTS)
     state = dec.start(3)
-    rows = [dec.features(state)[inject]]
+    rows = [dec.after_predictor(dec.features(state), pred[:, 0])]
     for u in range(targets.shape[1]):
         state = dec.advance(state, targets[:, u], torch.ones(3, dtype=torch.bool))
-        rows.append(dec.features(state)[inject])
-    dec_f = torch.stack(rows, dim=1)
-    for b in range(3):
-        n = int(lens[b]) + 1
-        assert torch.allclose(train_f[b, :n], dec_f[b, :n], atol=1e-6)
+        rows.append(dec.after_predictor(dec.features(state), pred[:, u + 1]))
+    keys = [k for k in FEATURES if k in train_f]
+    assert inject in keys or kind == "attention"  # attention alone always enters the joiner
+    assert keys and keys == [k for k in FEATURES if k in rows[0]]
+    for key in keys:
+        dec_f = torch.stack([r[key] for r in rows], dim=1)
+        for b in range(3):
+            n = int(lens[b]) + 1
+            assert torch.allclose(train_f[key][b, :n], dec_f[b, :n], atol=1e-6), key
 
 
 @pytest.mark.parametrize("kind", KINDS)
 def test_batch_of_one_equals_batched(kind):
     torch.manual_seed(2)
-    module = build_biasing(BiasConfig(kind=kind), 24, 16).eval()
+    module = build_biasing(BiasConfig(kind=kind), 24, 16, PRED_DIM).eval()
     targets, lens = _batch()
-    full = module.features(LISTS, targets, lens)["joiner"]
+    pred = torch.randn(3, targets.shape[1] + 1, PRED_DIM)
+    full = _features(module, LISTS, targets, lens, pred)["joiner"]
     for b in range(3):
-        one = module.features([LISTS[b]], targets[b: b + 1, : lens[b]], lens[b: b + 1])["joiner"]
-        assert torch.allclose(one[0], full[b, : int(lens[b]) + 1], atol=1e-6)
+        n = int(lens[b]) + 1
+        one = _features(module, [LISTS[b]], targets[b: b + 1, : lens[b]], lens[b: b + 1], pred[b: b + 1, :n])
+        assert torch.allclose(one["joiner"][0], full[b, :n], atol=1e-6)
 
 
-@pytest.mark.parametrize("kind", KINDS)
+@pytest.mark.parametrize("kind", ["trie"])  # the attention inputs' empty list: tests/test_attention.py
 def test_empty_list_gives_the_zero_cue_feature(kind):
     module = build_biasing(BiasConfig(kind=kind), 24, 16).eval()
     targets, lens = _batch()

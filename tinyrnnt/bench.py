@@ -6,6 +6,10 @@
              held-out name style, sound-alike false triggers, determinism, cue cost, recipe time
     fusion   beam search and shallow-fusion boosting (tuned on valid), alone and with the trie cue;
              after-trigger boosting, RTF, and our beam search against torchaudio's RNNTBeamSearch
+    attention  attention over the list and trie + attention against the trie cue and the shared
+             control (B-WER, recall at N = 100); training step and decoding time per utterance at
+             N = 10..5000 on one thread for no biasing, trie, attention, both and shallow fusion,
+             peak memory at N = 5000, RTF, a table and a plot
     faults   the bad-input catalogue, a killed-and-resumed training, a 100,000-entry list, a wheel install
     audio    formant-synthesizer and feature speed on one core, the feature cache (no audio read while
              training), 2-process distributed training agreeing on weights, the outside-voice corpus
@@ -131,6 +135,12 @@ def bench_fusion(args) -> dict:
     return run_fusion_bench(args)
 
 
+def bench_attention(args) -> dict:
+    from tinyrnnt.lab.attentionbench import run_attention_bench
+
+    return run_attention_bench(args)
+
+
 def bench_faults(args) -> dict:
     from tinyrnnt.lab.faultbench import run_fault_bench
 
@@ -146,7 +156,7 @@ def bench_audio(args) -> dict:
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python -m tinyrnnt.bench", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("name", choices=["corpus", "train", "trie", "fusion", "faults", "audio"])
+    p.add_argument("name", choices=["corpus", "train", "trie", "fusion", "attention", "faults", "audio"])
     p.add_argument("--corpus", default="corpora/default", help="default corpus folder (built when missing)")
     p.add_argument("--rebuild", action="store_true", help="corpus: rebuild the default corpus to time it")
     p.add_argument("--minutes", type=float, default=None,
@@ -154,13 +164,21 @@ def main(argv=None) -> int:
                         "(default none: the recipe's step budgets)")
     p.add_argument("--seeds", type=int, default=1,
                    help="trie: training seeds per arm (default 1; 3 reports the spread of the gain)")
-    p.add_argument("--fresh", action="store_true", help="train/trie: retrain even if a benchmark run exists")
+    p.add_argument("--fresh", action="store_true",
+                   help="train/trie/attention: retrain even if a benchmark run exists")
     p.add_argument("--resume", action="store_true",
                    help="trie: with --fresh, keep arms an interrupted run already finished (same settings)")
     p.add_argument("--run-dir", default=None, help="train/trie/fusion: where the benchmark models "
                    "live (default runs/bench-train, runs/bench-trie; fusion uses the trie benchmark's)")
     p.add_argument("--limit", type=int, default=0,
-                   help="fusion: utterances per split decoded (default 0 = all)")
+                   help="fusion/attention: utterances per split decoded (default 0 = all)")
+    p.add_argument("--trie-run-dir", default="runs/bench-trie",
+                   help="attention: where the trie benchmark's models live (trained there when missing; "
+                        "default runs/bench-trie)")
+    p.add_argument("--sizes", default="10,100,1000,5000",
+                   help="attention: list sizes of the cost measurement, comma-separated (default 10,100,1000,5000)")
+    p.add_argument("--timing-utts", type=int, default=20,
+                   help="attention: utterances decoded one at a time per method and size (default 20)")
     p.add_argument("--quick", action="store_true",
                    help="fusion: 4 boost weights and N = 100 only (a short look; not the quoted figures)")
     p.add_argument("--reference-utts", type=int, default=200,
@@ -180,7 +198,7 @@ def main(argv=None) -> int:
     if args.name == "train" and args.minutes is None:
         args.minutes = 10.0
     result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "fusion": bench_fusion,
-              "faults": bench_faults, "audio": bench_audio}[args.name](args)
+              "attention": bench_attention, "faults": bench_faults, "audio": bench_audio}[args.name](args)
     result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
     print(json.dumps(result))
     return 0

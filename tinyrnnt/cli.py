@@ -131,6 +131,15 @@ def _score(args) -> int:
     return 0
 
 
+def _picture(args) -> int:
+    from tinyrnnt.lab.pictures import utterance_pictures
+
+    facts = utterance_pictures(args.checkpoint, args.split, args.out, args.utterance, args.list_size, args.corpus)
+    print(f"{facts['id']}: ref {facts['ref']!r}, hyp {facts['hyp']!r}")
+    print("wrote " + ", ".join(facts["files"]))
+    return 0
+
+
 def _experiment(args) -> int:
     from tinyrnnt.lab.recipes import run_recipe
 
@@ -186,7 +195,7 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("--quiet", action="store_true", help="no progress bar")
     t.add_argument("settings", nargs="*",
                    help="section.key=value, e.g. train.steps=600 model.encoder_dim=192 bias.kind=trie "
-                        "(bias.kind: none or trie; bias.inject: joiner, predictor or both; "
+                        "(bias.kind: none, trie, attention or trie+attention; bias.inject: joiner, predictor or both; "
                         "bias.boost_mode: add or mix); unknown keys list the valid ones")
     t.set_defaults(fn=_train)
 
@@ -233,6 +242,16 @@ def build_parser() -> argparse.ArgumentParser:
                    help="also compare every system with this run (paired bootstrap of WER, U-WER and B-WER)")
     r.add_argument("--quiet", action="store_true", help="print only where the report is")
     r.set_defaults(fn=_report)
+
+    g = sub.add_parser("picture", help="pictures of one utterance: attention over the list, and the lattice "
+                                       "with the trie cue's active positions")
+    g.add_argument("checkpoint", help="a .ckpt file written by `tinyrnnt train`")
+    g.add_argument("--split", default="test_unseen", help="split of the utterance (default test_unseen)")
+    g.add_argument("--utterance", default=None, help="utterance id (default: the first one with a rare word)")
+    g.add_argument("--list-size", type=int, default=100, help="biasing list size N (default 100)")
+    g.add_argument("--corpus", default=None, help="corpus folder (default: the one the model trained on)")
+    g.add_argument("--out", default="pictures", help="folder for the PNG files (default pictures)")
+    g.set_defaults(fn=_picture)
 
     sub.add_parser("bench", help="run a benchmark, as python -m tinyrnnt.bench NAME (see tinyrnnt bench --help)")
     from tinyrnnt.audio.commands import add_commands

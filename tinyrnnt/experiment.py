@@ -75,6 +75,12 @@ def experiment_from_dict(d: dict) -> ExperimentConfig:
     return C.from_dict(ExperimentConfig, d, "config")
 
 
+def with_defaults(d: dict) -> dict:
+    """A saved config as today's code reads it: settings added since it was saved take their
+    defaults, so a run saved before a new setting existed compares equal to one saved after."""
+    return C.to_dict(experiment_from_dict(d))
+
+
 def load_experiment(recipe=None, overrides=()) -> ExperimentConfig:
     """Defaults <- one experiment's recipe (a built-in name or a YAML path) <- `section.key=value` overrides."""
     if recipe is not None:

@@ -20,6 +20,25 @@ for training, and optionally {"logits": (B, U+1, V)}: a per-token feature that
 joiner's token logits (hidden is the joiner's tanh layer, (..., Dj); logits the
 plain token logits, (..., V)); `decoder(lists)` returns an object that keeps a per-hypothesis
 state while decoding (see `Biaser`) so decoding sees the features training saw.
+
+Features that need the predictor's output (attention with the predictor state
+as its query) come from a second, optional hook, on both sides:
+`after_predictor(features, pred)` receives what `features` returned (the
+dictionary may carry entries of the module's own, which the model ignores) and
+the predictor output, (B, U+1, Dp) in training, (rows, Dp) per hypothesis row
+while decoding, and returns the dictionary the joiner reads. The model calls it
+once the predictor has run, so a "predictor" entry cannot depend on `pred`
+(the default returns `features` unchanged, as the trie cue does). Greedy and
+beam search call the Biaser's hook with each row's predictor output.
+Likewise `after_encoder(features, enc, enc_lens)` (training) may add
+"encoder": (B, T', Dj), a feature per encoder frame added to the joiner's
+encoder side (attention with the encoder state as its query); while decoding,
+`Biaser.frames(enc)` gives it per row, (rows, T', Dj), or None.
+
+A module's own settings live in `bias.options` (a mapping the module checks
+itself, e.g. through its own dataclass and `config.from_dict`), so a new idea
+takes one file and no field here. Built-in modules are imported by name
+(BUILT_IN) like a user's `bias.module`: this registry imports no plug-in code.
 """
 
 from __future__ import annotations
@@ -35,6 +54,7 @@ INJECTION_POINTS = ("joiner", "predictor", "both")
 BOOST_MODES = ("add", "mix")
 RESPELL_LETTERS = ("seen_pairs", "any")
 REGISTRY: dict[str, type["BiasingInput"]] = {}
+BUILT_IN = ("tinyrnnt.bias.trie_cue", "tinyrnnt.bias.attention", "tinyrnnt.bias.trie_and_attention")  # imported before a kind is looked up
 
 
 @dataclass
@@ -84,6 +104,9 @@ class BiasConfig:
     word_start: str = "first_tokens"  # cue at word starts: first tokens of all listed words, or "none"
     valid_list_size: int = 100  # list size of the valid split's lists during training
     sampling: ListSampling = field(default_factory=ListSampling)
+    # Settings of the chosen biasing input that are its own (not the trie cue's fields above),
+    # checked by the module when the model is built, e.g. {dim: 64, phrase_gate: prefix}.
+    options: dict = field(default_factory=dict)
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
@@ -105,13 +128,16 @@ def register(name: str):
     return wrap
 
 
-def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int) -> "BiasingInput | None":
+def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                  enc_dim: int | None = None) -> "BiasingInput | None":
+    """The biasing input `cfg.kind`, sized for a joiner of `joiner_dim`, predictor input embeddings
+    of `embed_dim` and (for inputs that read them) predictor outputs of `pred_dim` and encoder
+    outputs of `enc_dim`."""
     import importlib
-
-    from tinyrnnt.bias import trie_cue  # noqa: F401  (registers the built-in inputs)
 
     if cfg.kind == "none":
         return None
+    load_built_in()
     if cfg.module:
         # subtle: this runs Python code named in a recipe; say so before doing it
         print(f"bias.module: importing {cfg.module!r} (runs its code) to register biasing input {cfg.kind!r}",
@@ -126,22 +152,41 @@ def build_biasing(cfg: BiasConfig, joiner_dim: int, embed_dim: int) -> "BiasingI
         raise ValueError(f"bias.inject must be one of {INJECTION_POINTS}, got {cfg.inject!r}")
     if cfg.boost_mode not in BOOST_MODES:
         raise ValueError(f"bias.boost_mode must be one of {BOOST_MODES}, got {cfg.boost_mode!r}")
-    return REGISTRY[cfg.kind](cfg, joiner_dim, embed_dim)
+    return REGISTRY[cfg.kind](cfg, joiner_dim, embed_dim, pred_dim=pred_dim, enc_dim=enc_dim)
+
+
+def load_built_in() -> list[str]:
+    """Import the built-in biasing inputs (they register themselves); the registered names."""
+    import importlib
+
+    for name in BUILT_IN:
+        importlib.import_module(name)
+    return sorted(REGISTRY)
 
 
 class BiasingInput(nn.Module):
     name = "abstract"
 
-    def __init__(self, cfg: BiasConfig, joiner_dim: int, embed_dim: int):
+    def __init__(self, cfg: BiasConfig, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                 enc_dim: int | None = None):
         super().__init__()
         self.cfg = cfg
-        self.joiner_dim, self.embed_dim = joiner_dim, embed_dim
+        self.joiner_dim, self.embed_dim, self.pred_dim, self.enc_dim = joiner_dim, embed_dim, pred_dim, enc_dim
 
     def features(self, lists: list[list[str]], targets: Tensor, target_lens: Tensor) -> dict[str, Tensor]:
         raise NotImplementedError
 
     def decoder(self, lists: list[list[str]]) -> "Biaser":
         raise NotImplementedError
+
+    def after_predictor(self, features: dict[str, Tensor], pred: Tensor) -> dict[str, Tensor]:
+        """Features once the predictor output `pred` (B, U+1, Dp) is known; default: unchanged."""
+        return features
+
+    def after_encoder(self, features: dict[str, Tensor], enc: Tensor, enc_lens: Tensor) -> dict[str, Tensor]:
+        """Features once the encoder output `enc` (B, T', De) is known; may add "encoder"
+        (B, T', Dj); default: unchanged."""
+        return features
 
     def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor) -> Tensor:
         """Scores (..., V) added to the joiner's plain `logits` (..., V), for modules whose features
@@ -180,3 +225,13 @@ class Biaser:
     def features(self, state) -> dict[str, Tensor]:
         """{"joiner": (B, Dj)}, {"predictor": (B, E)}, {"logits": (B, V)}: as in training, per row."""
         raise NotImplementedError
+
+    def after_predictor(self, features: dict[str, Tensor], pred: Tensor) -> dict[str, Tensor]:
+        """Per row, as BiasingInput.after_predictor: `features` from `features(state)`, `pred`
+        (rows, Dp) each row's predictor output for its current history; default: unchanged."""
+        return features
+
+    def frames(self, enc: Tensor) -> Tensor | None:
+        """(rows, T', Dj) added to the joiner's encoder side of each row, from the encoder output
+        (rows, T', De) of each row's utterance; default None (nothing)."""
+        return None

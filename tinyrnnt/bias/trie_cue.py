@@ -28,8 +28,9 @@ MIX_GATE_START = -3.0  # the mixing gate starts at sigmoid(-3) = 0.05: the model
 
 @register("trie")
 class TrieCue(BiasingInput):
-    def __init__(self, cfg, joiner_dim: int, embed_dim: int):
-        super().__init__(cfg, joiner_dim, embed_dim)
+    def __init__(self, cfg, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                 enc_dim: int | None = None):
+        super().__init__(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
         self.proj = nn.Linear(VOCAB_SIZE, cfg.cue_dim)
         self.to_joiner = nn.Linear(cfg.cue_dim, joiner_dim) if cfg.inject in ("joiner", "both") else None
         self.to_predictor = nn.Linear(cfg.cue_dim, embed_dim) if cfg.inject in ("predictor", "both") else None

@@ -15,7 +15,7 @@ Batching. All utterances of a batch and all `beam` slots of each are rows of
 one tensor (row = utterance * beam + slot): one joiner call and one predictor
 step per round for all live hypotheses. Utterances are sorted by encoder length,
 so at frame t the live utterances are a prefix of the rows and finished ones
-drop out. Each row carries its predictor state and joiner-side vector (so a
+drop out. Each row carries its predictor state, output and joiner-side vector (so a
 prefix's predictor step runs once and is reused by every extension), its
 biasing-input state (the trie node), its boosting-scorer state, its tokens and
 a 64-bit rolling hash of them (equal hashes and lengths = the same sequence;
@@ -41,11 +41,13 @@ _HASH_MUL = 1_000_003
 
 @dataclass
 class _Rows:
-    """Hypothesis rows: score (n,), predictor state, joiner-side vector (n, Dj), token feature
-    (n, V) or None, biaser state, booster state, tokens (n, L), lengths (n,), hashes (n,)."""
+    """Hypothesis rows: score (n,), predictor state, predictor output (n, Dp), joiner-side vector
+    (n, Dj), token feature (n, V) or None, biaser state, booster state, tokens (n, L), lengths (n,),
+    hashes (n,)."""
 
     score: Tensor
     pstate: object
+    pred: Tensor
     label: Tensor
     tokfeat: Tensor | None
     bstate: object
@@ -56,16 +58,19 @@ class _Rows:
 
 
 class _Search:
-    def __init__(self, model, biaser, booster):
-        self.model, self.biaser, self.booster = model, biaser, booster
-        self.cache: dict[tuple[int, int], int] = {}  # (prefix hash, length) -> row of labels / states
-        self.labels, self.states = None, None
+    def __init__(self, model, biaser, booster, K: int):
+        self.model, self.biaser, self.booster, self.K = model, biaser, booster, K
+        # (prefix hash, length, utterance) -> row of preds / states. subtle: the utterance is part of
+        # the key because a biasing input's predictor feature depends on the utterance's list.
+        self.cache: dict[tuple[int, int, int], int] = {}
+        self.preds, self.states = None, None
 
     def take(self, r: _Rows, index: Tensor, score: Tensor | None = None) -> _Rows:
         m = self.model
         return _Rows(
             r.score.index_select(0, index) if score is None else score,
             m.predictor.select_state(r.pstate, index),
+            r.pred.index_select(0, index),
             r.label.index_select(0, index),
             None if r.tokfeat is None else r.tokfeat.index_select(0, index),
             None if self.biaser is None else self.biaser.select(r.bstate, index),
@@ -79,6 +84,7 @@ class _Search:
         return _Rows(
             torch.cat([p.score for p in parts]),
             self.model.predictor.cat_states([p.pstate for p in parts]),
+            torch.cat([p.pred for p in parts]),
             torch.cat([p.label for p in parts]),
             None if parts[0].tokfeat is None else torch.cat([p.tokfeat for p in parts]),
             None if self.biaser is None else self.biaser.cat([p.bstate for p in parts]),
@@ -97,44 +103,46 @@ class _Search:
         if self.biaser is not None:
             bstate = self.biaser.advance(r.bstate, tokens, torch.ones(n, dtype=torch.bool))
             extra = self.biaser.features(bstate)
-        pe, jo = extra.get("predictor"), extra.get("joiner")
+        pe = extra.get("predictor")
         new_hash, new_len = r.hash * _HASH_MUL + tokens, r.length + 1
         # The predictor (the costly part) runs once per new prefix: for live rows whose prefix no
         # earlier step computed (the same hypothesis extended by the same token at the next
         # frame is common); dead rows keep their parent's state.
         live = torch.nonzero(torch.isfinite(r.score))[:, 0].tolist()
-        keys = list(zip(new_hash.tolist(), new_len.tolist()))
+        keys = list(zip(new_hash.tolist(), new_len.tolist(), (torch.arange(n) // self.K).tolist()))
         hit = [i for i in live if keys[i] in self.cache]
         miss = [i for i in live if keys[i] not in self.cache]
-        label, pstate = r.label.clone(), r.pstate
+        pred, pstate = r.pred.clone(), r.pstate  # dead rows keep their parent's
         if miss:
             idx = torch.tensor(miss)
             sub = m.predictor.select_state(r.pstate, idx)
-            pred, new = m.predictor.step(tokens[idx, None], sub, None if pe is None else pe[idx, None])
-            lab = m.joiner.label_side(pred[:, 0], None if jo is None else jo[idx])
-            label[idx] = lab
+            out, new = m.predictor.step(tokens[idx, None], sub, None if pe is None else pe[idx, None])
+            pred[idx] = out[:, 0]
             pstate = m.predictor.put_state(pstate, idx, new)
-            self.store([keys[i] for i in miss], new, lab)
+            self.store([keys[i] for i in miss], new, out[:, 0])
         if hit:
             idx = torch.tensor(hit)
             rows = torch.tensor([self.cache[keys[i]] for i in hit])
-            label[idx] = self.labels.index_select(0, rows)
+            pred[idx] = self.preds.index_select(0, rows)
             pstate = m.predictor.put_state(pstate, idx, m.predictor.select_state(self.states, rows))
+        if self.biaser is not None:
+            extra = self.biaser.after_predictor(extra, pred)
+        label = m.joiner.label_side(pred, extra.get("joiner"))  # (n, Dj)
         ustate = None if self.booster is None else self.booster.advance(r.ustate, tokens)
-        return _Rows(r.score, pstate, label, extra.get("logits"), bstate, ustate, seq, new_len, new_hash)
+        return _Rows(r.score, pstate, pred, label, extra.get("logits"), bstate, ustate, seq, new_len, new_hash)
 
-    def store(self, keys: list, state, label: Tensor) -> None:
-        """Keep predictor states and joiner-side vectors of new prefixes, by (hash, length), in
+    def store(self, keys: list, state, out: Tensor) -> None:
+        """Keep predictor states and outputs of new prefixes, by (hash, length, utterance), in
         buffers that double when full."""
-        pred, n = self.model.predictor, label.shape[0]
-        if self.labels is None:
-            self.labels, self.states, self.used = label.clone(), pred.cat_states([state]), 0
-        elif self.used + n > self.labels.shape[0]:
-            while self.used + n > self.labels.shape[0]:
-                self.labels = torch.cat([self.labels, torch.zeros_like(self.labels)])
+        pred, n = self.model.predictor, out.shape[0]
+        if self.preds is None:
+            self.preds, self.states, self.used = out.clone(), pred.cat_states([state]), 0
+        elif self.used + n > self.preds.shape[0]:
+            while self.used + n > self.preds.shape[0]:
+                self.preds = torch.cat([self.preds, torch.zeros_like(self.preds)])
                 self.states = pred.cat_states([self.states, self.states])  # the new half is overwritten
         idx = torch.arange(self.used, self.used + n)
-        self.labels[idx] = label
+        self.preds[idx] = out
         pred.put_state(self.states, idx, state, inplace=True)
         for k, key in enumerate(keys):
             self.cache[key] = self.used + k
@@ -170,7 +178,8 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
         row_classes = [classes[int(b)] for b in order for _ in range(K)] if classes is not None else None
         booster = Booster(row_lists, boost.get("weight", 0.0), boost.get("where", "anywhere"), row_classes,
                           boost.get("triggers"))
-    search = _Search(model, biaser, booster)
+    search = _Search(model, biaser, booster, K)
+    frames = biaser.frames(enc.index_select(0, order).repeat_interleave(K, dim=0)) if biaser is not None else None
 
     R = B * K
     score = torch.full((R,), NEG)
@@ -182,7 +191,10 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
         extra = biaser.features(bstate)
     pe = extra.get("predictor")
     pred, pstate = model.predictor.step(start[:, None], None, None if pe is None else pe[:, None])
-    rows = _Rows(score, pstate, model.joiner.label_side(pred[:, 0], extra.get("joiner")), extra.get("logits"),
+    pred = pred[:, 0]  # (R, Dp)
+    if biaser is not None:
+        extra = biaser.after_predictor(extra, pred)
+    rows = _Rows(score, pstate, pred, model.joiner.label_side(pred, extra.get("joiner")), extra.get("logits"),
                  bstate, booster.start() if booster is not None else None,
                  torch.zeros((R, 8), dtype=torch.long), torch.zeros(R, dtype=torch.long),
                  torch.zeros(R, dtype=torch.long))
@@ -195,7 +207,10 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
                 finished[u] = search.take(rows, torch.arange(u * K, (u + 1) * K))
             rows = search.take(rows, torch.arange(now * K))
             live = now
-        rows = _frame(search, rows, enc_p[:live, t], live, K, max_symbols)
+        enc_rows = enc_p[:live, t].repeat_interleave(K, dim=0)  # (live*K, Dj)
+        if frames is not None:  # (R, T', Dj): a biasing feature per frame and row
+            enc_rows = enc_rows + frames[: live * K, t]
+        rows = _frame(search, rows, enc_rows, live, K, max_symbols)
     for u in range(live):
         finished[u] = search.take(rows, torch.arange(u * K, (u + 1) * K))
 
@@ -208,10 +223,10 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
     return out
 
 
-def _frame(search: _Search, rows: _Rows, enc_t: Tensor, U: int, K: int, max_symbols: int) -> _Rows:
-    """One encoder frame for U utterances (rows U*K): expand, end with blank, merge, keep K."""
+def _frame(search: _Search, rows: _Rows, enc_rows: Tensor, U: int, K: int, max_symbols: int) -> _Rows:
+    """One encoder frame for U utterances (rows U*K, their encoder sides enc_rows (U*K, Dj)): expand,
+    end with blank, merge, keep K."""
     m, booster = search.model, search.booster
-    enc_rows = enc_t.repeat_interleave(K, dim=0)  # (U*K, Dj)
     ends: list[_Rows] = []
     a = rows
     for s in range(max_symbols + 1):
@@ -253,4 +268,4 @@ def _frame(search: _Search, rows: _Rows, enc_t: Tensor, U: int, K: int, max_symb
 
 
 def _rest(r: _Rows):
-    return r.pstate, r.label, r.tokfeat, r.bstate, r.ustate, r.tokens, r.length, r.hash
+    return r.pstate, r.pred, r.label, r.tokfeat, r.bstate, r.ustate, r.tokens, r.length, r.hash

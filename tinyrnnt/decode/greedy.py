@@ -9,7 +9,9 @@ some utterance emitted, batched over the batch.
 A biasing input can take part through `biaser` (see tinyrnnt.bias.base): it
 keeps a state per utterance, gives a joiner feature for the current label
 history, and advances with each emitted token, so decoding sees exactly the
-cue the model was trained with.
+cue the model was trained with. Features that read the predictor output
+(`Biaser.after_predictor`, e.g. attention over the list) get each row's
+current predictor output.
 """
 
 from __future__ import annotations
@@ -36,11 +38,17 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
     enc, enc_lens = model.encoder(feats, feat_lens)  # (B, T', De)
     B, T, _ = enc.shape
     enc_p = model.joiner.enc_proj(enc)  # (B, T', Dj)
+    frames = biaser.frames(enc) if biaser is not None else None  # (B, T', Dj) or None
+    if frames is not None:
+        enc_p = enc_p + frames
     tokens = torch.full((B, 1), BLANK, dtype=torch.long, device=feats.device)
     bstate = biaser.start(B) if biaser is not None else None
     extra = biaser.features(bstate) if biaser is not None else {}
     pred, state = model.predictor.step(tokens, None, _one_step(extra.get("predictor")))  # (B, 1, Dp)
-    label = model.joiner.label_side(pred[:, 0], extra.get("joiner"))  # (B, Dj)
+    pred = pred[:, 0]  # (B, Dp)
+    if biaser is not None:
+        extra = biaser.after_predictor(extra, pred)
+    label = model.joiner.label_side(pred, extra.get("joiner"))  # (B, Dj)
     emitted: list[tuple[Tensor, Tensor]] = []
     for t in range(T):
         still = t < enc_lens  # (B,)
@@ -58,11 +66,15 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
                 bstate = biaser.advance(bstate, best, emit)
                 extra = biaser.features(bstate)
             new_pred, new_state = model.predictor.step(best[:, None], state, _one_step(extra.get("predictor")))
-            new_label = model.joiner.label_side(new_pred[:, 0], extra.get("joiner"))
             if B == 1 or bool(emit.all()):  # nothing to keep from the old state (always so at batch 1)
-                state, label = new_state, new_label
+                state, pred = new_state, new_pred[:, 0]
             else:
-                state, label = _select(emit, new_state, state), _select(emit, new_label, label)
+                state, pred = _select(emit, new_state, state), _select(emit, new_pred[:, 0], pred)
+            # subtle: rows that did not emit keep their biaser state, so features(bstate) gives them
+            # their old features, and with their old predictor output the same label as before
+            if biaser is not None:
+                extra = biaser.after_predictor(extra, pred)
+            label = model.joiner.label_side(pred, extra.get("joiner"))  # (B, Dj)
             still = emit
     if not emitted:
         return [[] for _ in range(B)]

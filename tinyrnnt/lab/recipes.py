@@ -275,8 +275,11 @@ def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False, build: bool = Fals
 
 
 def _training_part(config: dict) -> dict:
-    """A saved config without its decoding settings, which do not change what is trained."""
-    return {k: v for k, v in config.items() if k != "decode"}
+    """A saved config without its decoding settings, which do not change what is trained (settings
+    added since it was saved read as their defaults)."""
+    from tinyrnnt.experiment import with_defaults
+
+    return {k: v for k, v in with_defaults(config).items() if k != "decode"}
 
 
 def _saved_settings_match(saved: Path, cfg: ExperimentConfig) -> bool:

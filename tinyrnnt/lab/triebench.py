@@ -87,7 +87,9 @@ def train_recipe(args):
     wanted = {key: C.to_dict(arm.cfg) for key, arm in arms.items()}
     trained = json.loads(facts_path.read_text()) if facts_path.is_file() else None
     def training_part(configs: dict) -> dict:  # decoding settings do not change what is trained
-        return {k: {kk: vv for kk, vv in c.items() if kk != "decode"} for k, c in configs.items()}
+        from tinyrnnt.lab.recipes import _training_part
+
+        return {k: _training_part(c) for k, c in configs.items()}
 
     if trained is not None and training_part(trained.get("configs", {})) != training_part(wanted):
         _log(f"{facts_path} was trained with other settings: training again")

@@ -217,8 +217,12 @@ class Joiner(nn.Module):
         p = self.pred_proj(pred)  # (B, U+1, Dj)
         return p if label_bias is None else p + label_bias
 
-    def hidden(self, enc: Tensor, pred: Tensor, label_bias: Tensor | None = None) -> Tensor:
+    def hidden(self, enc: Tensor, pred: Tensor, label_bias: Tensor | None = None,
+               frame_bias: Tensor | None = None) -> Tensor:
+        """frame_bias (B, T, Dj): a biasing feature per encoder frame, added to the encoder side."""
         e = self.enc_proj(enc)  # (B, T, Dj)
+        if frame_bias is not None:
+            e = e + frame_bias
         p = self.label_side(pred, label_bias)  # (B, U+1, Dj)
         return torch.tanh(e[:, :, None, :] + p[:, None, :, :])  # (B, T, U+1, Dj)
 
@@ -237,7 +241,8 @@ class Transducer(nn.Module):
         self.encoder = Encoder(cfg)
         self.predictor = Predictor(cfg)
         self.joiner = Joiner(self.encoder.out_dim, self.predictor.out_dim, cfg)
-        self.bias = build_biasing(bias, cfg.joiner_dim, cfg.predictor_embed) if bias is not None else None
+        self.bias = (build_biasing(bias, cfg.joiner_dim, cfg.predictor_embed, cfg.predictor_dim,
+                                   self.encoder.out_dim) if bias is not None else None)
         self.ctc_head = nn.Linear(self.encoder.out_dim, VOCAB_SIZE) if cfg.ctc_weight > 0 else None
 
     def forward(self, feats: Tensor, feat_lens: Tensor, targets: Tensor, target_lens: Tensor | None = None,
@@ -259,10 +264,12 @@ class Transducer(nn.Module):
             extra = self.bias.features(lists, targets, target_lens)
         enc, enc_lens, *first = self.encoder(feats, feat_lens, keep_first=keep_first)  # (B, T', De)
         pred = self.predictor(targets, extra.get("predictor"))  # (B, U+1, Dp)
+        if self.bias is not None and lists is not None:  # features that read the encoder or predictor output
+            extra = self.bias.after_predictor(self.bias.after_encoder(extra, enc, enc_lens), pred)
         joiner_bias = extra.get("joiner")
         if label_bias is not None:
             joiner_bias = label_bias if joiner_bias is None else joiner_bias + label_bias
-        hidden = self.joiner.hidden(enc, pred, joiner_bias)  # (B, T', U+1, Dj)
+        hidden = self.joiner.hidden(enc, pred, joiner_bias, extra.get("encoder"))  # (B, T', U+1, Dj)
         token_feature = extra["logits"][:, None] if "logits" in extra else None  # (B, 1, U+1, V)
         return self.token_logits(hidden, token_feature), enc_lens, first  # (B, T', U+1, V)
 

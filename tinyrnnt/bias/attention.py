@@ -1,0 +1,311 @@
+"""Attention biasing over the list, as a plug-in.
+
+Attention over phrase vectors (CLAS, Pundak et al., SLT 2018; the attention
+module of Jain et al., Interspeech 2020): every listed entry's tokens become
+one vector (the phrase encoder: token embeddings, then a convolution with
+max-pooling, or a bidirectional LSTM with mean-pooling), and a learned
+"no-bias" entry is put first so the model can attend to nothing. The query is
+the predictor output at each label position (`query: predictor`, as in CLAS);
+scaled dot-product attention (Vaswani et al., 2017) over the entries gives a
+context vector, projected into the joiner's predictor side. With `query:
+encoder` the query is the encoder output at each frame instead and the context
+enters the joiner's encoder side (one context per frame, computed once per
+utterance before the search). Phrase vectors are computed once per list (a
+batch encodes its distinct words once) and reused at every decoding step.
+
+Phrase gate (`phrase_gate`, the prefix conditioning of CLAS 2018 applied to the
+entry's own tokens): "all" lets every entry be attended to everywhere;
+"prefix" only entries that the current partial word (tokens since the last
+word boundary, empty at a word start) is a prefix of, so at a word start all
+entries; "started" only entries whose first tokens the hypothesis has already
+written, so at a word start none (the no-bias entry only). The gate needs the
+label history, so it goes with the predictor query only. An entry with a
+space (a phrase of several words) is followed across its spaces; a match
+restarts at every word boundary. The no-bias entry is never masked.
+
+Deliberately not here: multi-head attention, a query from both states.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import torch
+from torch import Tensor, nn
+
+from tinyrnnt.bias.base import Biaser, BiasingInput, register
+from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE, encode
+
+ENCODERS = ("conv", "lstm")
+GATES = ("all", "prefix", "started")
+QUERIES = ("predictor", "encoder")
+MASK_KEY, ROW_KEY = "attention_mask", "attention_rows"  # the module's own feature entries
+
+
+@dataclass
+class AttentionSettings:
+    """`bias.options` of the attention inputs."""
+
+    dim: int = 64  # Da: size of phrase vectors, keys and queries
+    embed: int = 32  # token embedding size of the phrase encoder
+    encoder: str = "conv"  # phrase encoder: "conv" (convolution + max-pool) or "lstm" (bidirectional + mean-pool)
+    width: int = 3  # convolution width in tokens (odd)
+    phrase_gate: str = "all"  # which entries may be attended to: all | prefix | started (module docstring)
+    query: str = "predictor"  # whose state asks: the predictor's (per label position) or the encoder's (per frame)
+
+    def __post_init__(self):
+        from tinyrnnt.config import ConfigError, require
+
+        require(self, "bias.options", positive=("dim", "embed", "width"))
+        for name, value, choices in (("encoder", self.encoder, ENCODERS), ("phrase_gate", self.phrase_gate, GATES),
+                                     ("query", self.query, QUERIES)):
+            if value not in choices:
+                raise ConfigError(f"bias.options.{name} must be one of {list(choices)}, got {value!r}")
+        if self.width % 2 == 0:
+            raise ConfigError(f"bias.options.width must be odd (the convolution keeps the length), got {self.width}")
+        if self.query == "encoder" and self.phrase_gate != "all":
+            raise ConfigError(f"bias.options.phrase_gate {self.phrase_gate!r} needs the label history, so "
+                              "query: predictor; with query: encoder it must be 'all'")
+        if self.encoder == "lstm" and self.dim % 2:
+            raise ConfigError(f"bias.options.dim must be even with the lstm encoder (two directions), got {self.dim}")
+
+
+def read_settings(options: dict) -> AttentionSettings:
+    from tinyrnnt.config import from_dict
+
+    return from_dict(AttentionSettings, dict(options), "bias.options")
+
+
+def token_table(words: list[str]) -> tuple[Tensor, Tensor]:
+    """Token ids of each entry, padded with blank: (W, L) and lengths (W,).
+
+    >>> ids, n = token_table(["ab", "c"])
+    >>> ids.tolist(), n.tolist()
+    ([[3, 4], [5, 0]], [2, 1])
+    """
+    import numpy as np
+
+    rows = []
+    for w in words:
+        if not w.strip():
+            raise ValueError("biasing list: an empty entry; expected letters")
+        rows.append(encode(w, where=f"biasing list entry {w!r}"))
+    lengths = np.array([len(r) for r in rows], dtype=np.int64)
+    L = int(lengths.max()) if len(rows) else 1
+    # one flat array, scattered into place: a Python loop of small tensor writes cost more than
+    # the phrase encoder itself at N = 5000
+    flat = np.fromiter((t for r in rows for t in r), dtype=np.int64, count=int(lengths.sum()))
+    ids = np.full((len(rows), L), BLANK, dtype=np.int64)
+    ids[np.arange(L)[None, :] < lengths[:, None]] = flat
+    return torch.from_numpy(ids), torch.from_numpy(lengths)
+
+
+def advance_gate(pos: Tensor, fresh: Tensor, tokens: Tensor, table: Tensor, lengths: Tensor) -> tuple[Tensor, Tensor]:
+    """Match positions after one token: pos (n, N) tokens of each entry matched so far (-1 = not
+    being spelled), fresh (n,) true at a word start, tokens (n,), table (n, N, L), lengths (n, N).
+
+    subtle: a token that continues an entry wins over the word boundary (entries may hold spaces);
+    a word boundary restarts every entry at 0; a token at a word start may begin an entry that a
+    multi-word match was still following.
+
+    >>> t, n = token_table(["ab", "b"])
+    >>> pos, fresh = torch.zeros(1, 2, dtype=torch.long), torch.ones(1, dtype=torch.bool)
+    >>> pos, fresh = advance_gate(pos, fresh, torch.tensor([3]), t[None], n[None])  # "a"
+    >>> pos.tolist()
+    [[1, -1]]
+    """
+    L = table.shape[-1]
+    at = table.gather(2, pos.clamp(0, L - 1)[..., None])[..., 0]  # (n, N) the entry's next token
+    y = tokens[:, None]  # (n, 1)
+    cont = (pos >= 0) & (pos < lengths) & (at == y)
+    begin = fresh[:, None] & (table[..., 0] == y)
+    new = torch.where(cont, pos + 1, torch.where(y == SPACE, torch.zeros_like(pos),
+                                                 torch.where(begin, torch.ones_like(pos), torch.full_like(pos, -1))))
+    return new, tokens == SPACE
+
+
+class Memory:
+    """The distinct lists of a set of rows (beam search gives each utterance's list once per
+    hypothesis slot), each list's entries as indices into the distinct words, and which list
+    each row reads."""
+
+    def __init__(self, lists: list[list[str]]):
+        words: dict[str, int] = {}
+        distinct: dict[tuple[str, ...], int] = {}
+        self.which = torch.tensor([distinct.setdefault(tuple(lst), len(distinct)) for lst in lists],
+                                  dtype=torch.long)  # (R,) list of each row
+        index = [[words.setdefault(w, len(words)) for w in lst] for lst in distinct]
+        N = max((len(x) for x in index), default=0)
+        self.index = torch.zeros(len(index), N, dtype=torch.long)  # (lists, N)
+        self.valid = torch.zeros(len(index), N, dtype=torch.bool)  # (lists, N)
+        for r, x in enumerate(index):
+            self.index[r, : len(x)] = torch.tensor(x, dtype=torch.long)
+            self.valid[r, : len(x)] = True
+        self.ids, self.lengths = token_table(list(words))  # (W, L), (W,)
+
+
+@register("attention")
+class ListAttention(BiasingInput):
+    def __init__(self, cfg, joiner_dim: int, embed_dim: int, pred_dim: int | None = None,
+                 enc_dim: int | None = None):
+        super().__init__(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
+        o = self.opts = read_settings(cfg.options)
+        asker = pred_dim if o.query == "predictor" else enc_dim
+        if asker is None:
+            raise ValueError(f"attention biasing with query {o.query!r} needs that state's size "
+                             f"(build_biasing's {'pred_dim' if o.query == 'predictor' else 'enc_dim'})")
+        self.embed = nn.Embedding(VOCAB_SIZE, o.embed, padding_idx=BLANK)  # padding embeds to zeros
+        if o.encoder == "conv":
+            self.conv = nn.Conv1d(o.embed, o.dim, o.width, padding=o.width // 2)
+        else:
+            from tinyrnnt.model.transducer import RecurrentStack
+
+            self.lstm = RecurrentStack(o.embed, o.dim // 2, 1, True, 0.0)
+        self.no_bias = nn.Parameter(torch.randn(o.dim) * 0.1)  # the "attend to nothing" entry
+        self.query = nn.Linear(asker, o.dim)
+        self.key = nn.Linear(o.dim, o.dim)
+        self.to_joiner = nn.Linear(o.dim, joiner_dim)
+
+    def encode_phrases(self, ids: Tensor, lengths: Tensor) -> Tensor:
+        """(W, L) token ids -> (W, Da) phrase vectors, independent of the padding."""
+        if ids.shape[0] == 0:
+            return torch.zeros(0, self.opts.dim)
+        W, L = ids.shape
+        e = self.embed(ids)  # (W, L, E)
+        valid = (torch.arange(L)[None, :] < lengths[:, None])[..., None]  # (W, L, 1)
+        if self.opts.encoder == "conv":
+            h = torch.relu(self.conv(e.transpose(1, 2))).transpose(1, 2)  # (W, L, Da)
+            return h.masked_fill(~valid, float("-inf")).amax(1)  # (W, Da); ReLU >= 0, every entry has a token
+        h = self.lstm(e, lengths)  # (W, L, Da), zero past each length
+        return (h * valid).sum(1) / lengths[:, None]  # (W, Da)
+
+    def entries(self, mem: Memory) -> tuple[Tensor, Tensor]:
+        """Keys and values of each distinct list, no-bias entry first: (lists, N+1, Da) each."""
+        phrases = self.encode_phrases(mem.ids, mem.lengths)  # (W, Da)
+        n = mem.index.shape[0]
+        values = torch.cat([self.no_bias.expand(n, 1, -1), phrases[mem.index]], dim=1)  # (lists, N+1, Da)
+        return self.key(values), values
+
+    def attend(self, query: Tensor, keys: Tensor, values: Tensor, mask: Tensor) -> tuple[Tensor, Tensor]:
+        """Context (..., Da) and attention weights (..., N+1) of queries (..., Da) over entries whose
+        keys and values are (N+1, Da) for all rows, (B, N+1, Da) for the queries (B, U+1, Da) of
+        training, or (n, N+1, Da) per decoding row of queries (n, Da); mask (..., N+1)."""
+        if keys.dim() == 2 or keys.dim() == query.dim():
+            scores = query @ keys.transpose(-1, -2)  # (..., N+1)
+        else:
+            scores = (keys @ query[..., None])[..., 0]  # (n, N+1)
+        w = torch.softmax((scores / math.sqrt(self.opts.dim)).masked_fill(~mask, float("-inf")), dim=-1)
+        if values.dim() == 2 or values.dim() == w.dim():
+            return w @ values, w  # (..., Da)
+        return (w[..., None, :] @ values)[..., 0, :], w  # (n, Da)
+
+    def gate_masks(self, mem: Memory, targets: Tensor) -> Tensor:
+        """Which entries may be attended to at every label position: (B, U+1, N+1), no-bias first."""
+        B, U = targets.shape
+        N = mem.index.shape[1]
+        listed = mem.valid[mem.which]  # (B, N)
+        valid = torch.cat([torch.ones(B, 1, dtype=torch.bool), listed], dim=1)  # (B, N+1)
+        if self.opts.phrase_gate == "all":
+            return valid[:, None].expand(B, U + 1, N + 1)
+        index = mem.index[mem.which]  # (B, N)
+        table, lengths = mem.ids[index], mem.lengths[index]  # (B, N, L), (B, N)
+        pos, fresh = torch.zeros(B, N, dtype=torch.long), torch.ones(B, dtype=torch.bool)
+        steps = [pos]
+        for u in range(U):
+            pos, fresh = advance_gate(pos, fresh, targets[:, u], table, lengths)
+            steps.append(pos)
+        pos = torch.stack(steps, dim=1)  # (B, U+1, N)
+        ok = pos > 0 if self.opts.phrase_gate == "started" else pos >= 0
+        return torch.cat([torch.ones(B, U + 1, 1, dtype=torch.bool), ok & listed[:, None]], dim=2)
+
+    def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
+        mem = Memory(lists)
+        keys, values = self.entries(mem)  # (lists, N+1, Da)
+        return {MASK_KEY: self.gate_masks(mem, targets), ROW_KEY: (keys[mem.which], values[mem.which])}
+
+    def after_predictor(self, features: dict, pred: Tensor) -> dict:
+        if self.opts.query != "predictor":
+            return features
+        keys, values = features[ROW_KEY]
+        context, _ = self.attend(self.query(pred), keys, values, features[MASK_KEY])  # (..., Da)
+        out = dict(features)
+        j = self.to_joiner(context)  # (..., Dj)
+        out["joiner"] = j if features.get("joiner") is None else features["joiner"] + j
+        return out
+
+    def after_encoder(self, features: dict, enc: Tensor, enc_lens: Tensor) -> dict:
+        if self.opts.query != "encoder":
+            return features
+        keys, values = features[ROW_KEY]  # (B, N+1, Da)
+        mask = features[MASK_KEY][:, :1].expand(-1, enc.shape[1], -1)  # (B, T', N+1), no gate with this query
+        return {**features, "encoder": self.frame_context(enc, keys, values, mask)}
+
+    def frame_context(self, enc: Tensor, keys: Tensor, values: Tensor, mask: Tensor) -> Tensor:
+        """The encoder-side feature (B, T', Dj) of encoder outputs (B, T', De)."""
+        context, _ = self.attend(self.query(enc), keys, values, mask)  # (B, T', Da)
+        return self.to_joiner(context)
+
+    def decoder(self, lists) -> "AttentionBiaser":
+        return AttentionBiaser(self, lists)
+
+
+
+class AttentionBiaser(Biaser):
+    """Per row: its place in the rows given to `decoder` (which list it reads) and, with a phrase
+    gate, each entry's match position and whether the row is at a word start."""
+
+    def __init__(self, module: ListAttention, lists: list[list[str]]):
+        self.module, self.mem = module, Memory(lists)
+        self.keys, self.values = module.entries(self.mem)  # (lists, N+1, Da): once per list, reused every step
+        self.shared = self.keys.shape[0] == 1
+        if self.shared:  # one list for every row: attend to one table
+            self.keys, self.values = self.keys[0], self.values[0]
+        self.gated = module.opts.phrase_gate != "all"
+        if self.gated:
+            index = self.mem.index[self.mem.which]  # (R, N)
+            self.table, self.lengths = self.mem.ids[index], self.mem.lengths[index]  # (R, N, L), (R, N)
+
+    def start(self, B: int):
+        rows = torch.arange(B)
+        if not self.gated:
+            return (rows,)
+        return rows, torch.zeros(B, self.mem.index.shape[1], dtype=torch.long), torch.ones(B, dtype=torch.bool)
+
+    def advance(self, state, tokens: Tensor, emit: Tensor):
+        if not self.gated:
+            return state
+        rows, pos, fresh = state
+        new_pos, new_fresh = advance_gate(pos, fresh, tokens, self.table[rows], self.lengths[rows])
+        return rows, torch.where(emit[:, None], new_pos, pos), torch.where(emit, new_fresh, fresh)
+
+    def features(self, state) -> dict:
+        rows = state[0]
+        which = self.mem.which[rows]  # (n,)
+        valid = torch.cat([torch.ones(len(rows), 1, dtype=torch.bool), self.mem.valid[which]], dim=1)  # (n, N+1)
+        if self.gated:
+            pos = state[1]
+            ok = pos > 0 if self.module.opts.phrase_gate == "started" else pos >= 0
+            valid[:, 1:] &= ok
+        if self.shared:
+            return {MASK_KEY: valid, ROW_KEY: (self.keys, self.values)}
+        return {MASK_KEY: valid, ROW_KEY: (self.keys[which], self.values[which])}
+
+    def after_predictor(self, features: dict, pred: Tensor) -> dict:
+        return self.module.after_predictor(features, pred)
+
+    def frames(self, enc: Tensor) -> Tensor | None:
+        if self.module.opts.query != "encoder":
+            return None
+        which = self.mem.which[: enc.shape[0]]  # (R,): rows in the order given to decoder()
+        valid = torch.cat([torch.ones(len(which), 1, dtype=torch.bool), self.mem.valid[which]], dim=1)
+        keys, values = (self.keys, self.values) if self.shared else (self.keys[which], self.values[which])
+        if self.shared:  # (N+1, Da) for every row
+            keys, values = keys.expand(len(which), -1, -1), values.expand(len(which), -1, -1)
+        return self.module.frame_context(enc, keys, values, valid[:, None].expand(-1, enc.shape[1], -1))
+
+    def weights(self, state, pred: Tensor) -> Tensor:
+        """Attention weights (n, N+1) of each row, no-bias entry first (for pictures)."""
+        f = self.features(state)
+        keys, values = f[ROW_KEY]
+        return self.module.attend(self.module.query(pred), keys, values, f[MASK_KEY])[1]
