@@ -2,6 +2,7 @@
 cells kept on restart (after a kill too), one JSON Lines file, comparisons with their reference cell."""
 
 import json
+import math
 import signal
 import subprocess
 import sys
@@ -143,12 +144,16 @@ def test_a_torn_last_line_is_dropped_and_bad_grids_are_named(corpus, tmp_path):
     bad.write_text(recipe.replace("plain:", "'plain fusion':"))
     with pytest.raises(ConfigError, match="only letters"):
         read_recipe(bad)
+    for axis in ("biasing", "fusion"):  # an axis name that would clash with a result key, first or last
+        bad.write_text(recipe.replace(f"    {axis}:", "    wer:").replace(f"compare: {{{axis}: ", "compare: {wer: "))
+        with pytest.raises(ConfigError, match="axis name 'wer'"):
+            read_recipe(bad)
     bad.write_text(recipe.replace("axes:", "rows: 1\n  axes:"))
     with pytest.raises(ConfigError, match="unknown key 'rows'"):
         read_recipe(bad)
 
 
-@pytest.mark.parametrize("name", ["quickstart", "list_size_scaling", "boost_sweep", "trie_vs_baseline"])
+@pytest.mark.parametrize("name", sorted(p.stem for p in (Path(__file__).parents[1] / "tinyrnnt" / "recipes").glob("*.yaml")))
 def test_shipped_recipes_read_and_expand(name):
     from tinyrnnt.lab.grid import GridPlan, expand
     from tinyrnnt.lab.recipes import expand_arms
@@ -159,13 +164,16 @@ def test_shipped_recipes_read_and_expand(name):
     if recipe.grid:
         plan = from_dict(GridPlan, recipe.grid, "grid")
         cells, models = expand(recipe, plan)
-        assert len(models) == 2 and len(cells) == len(models) * len(plan.axes["list_size"]) * (
-            len(plan.axes.get("weight", {0: 0})))
+        assert len(cells) == math.prod(len(labels) for labels in plan.axes.values())  # every combination
+        assert len(models) == len(plan.axes["biasing"]) * len(plan.axes.get("seed", [0]))  # decoding shares models
         assert plan.compare and all(c.labels for c in cells)
     else:
         arms = expand_arms(recipe)
-        assert {"baseline", "trie", "trie_control"} <= set(arms)
-        assert arms["trie"].cfg.train.steps == arms["trie_control"].cfg.train.steps
+        assert "baseline" in arms
+        controls = [a for k, a in arms.items() if k.endswith("_control")]
+        for arm in arms.values():  # every biased arm has an equal-steps control from the same start
+            if arm.cfg.bias.kind != "none":
+                assert any(c.cfg.train.steps == arm.cfg.train.steps and c.source == arm.source for c in controls)
 
 
 def test_a_grid_without_runs_over_seeds_trains_from_nothing_and_reports_the_spread(corpus, tmp_path):

@@ -64,9 +64,9 @@ class GridPlan:
                 odd = [k for k in values if not re.fullmatch(r"[A-Za-z0-9_.+-]+", str(k))]
                 if odd:  # labels name folders and cells ("axis=label,axis=label")
                     raise C.ConfigError(f"{where}: label {odd[0]!r} may hold only letters, digits and _ . + -")
-        if not re.fullmatch(r"[A-Za-z0-9_]+", axis) or axis in RESERVED:
-            raise C.ConfigError(f"grid.axes: axis name {axis!r} may hold only letters, digits and _, and may not be "
-                                f"one of {sorted(RESERVED)}")
+            if not re.fullmatch(r"[A-Za-z0-9_]+", axis) or axis in RESERVED:
+                raise C.ConfigError(f"grid.axes: axis name {axis!r} may hold only letters, digits and _, and may "
+                                    f"not be one of {sorted(RESERVED)}")
         for axis, ref in self.compare.items():
             if axis not in self.axes or str(ref) not in map(str, self.axes[axis]):
                 raise C.ConfigError(f"grid.compare.{axis}: expected an axis and one of its labels; axes: "
