@@ -341,6 +341,7 @@ def wheel_main_job(root: Path, corpus: Path) -> bool:
     env = {**os.environ, "PYTHONPATH": str(site)}
     away = root / "elsewhere"
     away.mkdir()
-    out = _cli(["experiment", "--quiet", f"data.corpus={corpus}", "train.steps=2", *TINY,
+    out = _cli(["experiment", "--quiet", "--recipe", "quickstart", f"data.corpus={corpus}", "train.steps=2", *TINY,
                 "evaluate.splits=[test]", "evaluate.list_sizes=[0,10]", "evaluate.limit=16"], away, env=env)
-    return out.returncode == 0 and (away / "runs" / "trie_vs_baseline" / "results.md").is_file()
+    done = away / "runs" / "quickstart"
+    return out.returncode == 0 and (done / "results.md").is_file() and (done / "report" / "report.html").is_file()
