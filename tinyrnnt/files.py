@@ -54,3 +54,15 @@ def check_output_folder(folder: str | Path, need_bytes: int, what: str) -> None:
 
 def _mb(n: int) -> str:
     return f"{n / MB:.0f}" if n >= 10 * MB else f"{n / MB:.1f}"
+
+
+def put_in_place(built: Path, out_dir: Path) -> None:
+    """Move a folder built under a temporary name to `out_dir`, replacing one already there only
+    once the new one is whole (the old one is renamed aside first, then removed)."""
+    if out_dir.exists():
+        old = out_dir.parent / f".{out_dir.name}.old-{os.getpid()}"
+        out_dir.rename(old)
+        built.rename(out_dir)
+        shutil.rmtree(old)
+    else:
+        built.rename(out_dir)

@@ -36,7 +36,7 @@ import numpy as np
 
 from tinyrnnt.audio.features import AudioError, FeatureConfig, LogMel, read_audio
 from tinyrnnt.audio.manifest import Line, ManifestError, read_manifest
-from tinyrnnt.files import check_output_folder
+from tinyrnnt.files import check_output_folder, put_in_place
 from tinyrnnt.synth.scenario import RARE_CLASSES
 
 NO_ENTRY = 65535  # uint16 list padding: no more entries (tinyrnnt.data skips it)
@@ -155,13 +155,7 @@ def build_audio_corpus(manifests: str | Path, out_dir: str | Path, cfg: AudioCor
                                         + "\n", encoding="utf-8")
         (tmp / "audio.json").write_text(json.dumps({"manifests": str(manifests.resolve()), **asdict(cfg)}, indent=1)
                                         + "\n", encoding="utf-8")
-        if out_dir.exists():
-            old = out_dir.parent / f".{out_dir.name}.old-{os.getpid()}"
-            out_dir.rename(old)
-            tmp.rename(out_dir)
-            shutil.rmtree(old)
-        else:
-            tmp.rename(out_dir)
+        put_in_place(tmp, out_dir)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

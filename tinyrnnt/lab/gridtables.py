@@ -68,7 +68,7 @@ def comparison_rows(plan, lines: list[dict]) -> list[dict]:
 
 def write_grid_tables(folder: Path, plan, lines: list[dict]) -> dict:
     """grid_results.{csv,json,md} and, with `compare`, grid_comparisons.{csv,json}."""
-    from tinyrnnt.lab.report import to_csv
+    from tinyrnnt.lab.tables import to_csv
     from tinyrnnt.lab.tables import markdown_table
 
     rows = [{"cell": g["cell"], "split": g["split"], **{a: g[a] for a in plan.axes}, **{k: g.get(k) for k in SHOWN}}

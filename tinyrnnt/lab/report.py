@@ -15,13 +15,13 @@ It trains, decodes and changes nothing in the folder it reads.
 from __future__ import annotations
 
 import csv
-import io
 import json
 from dataclasses import dataclass
 from pathlib import Path
 
 from tinyrnnt import config as C
 from tinyrnnt.lab.evaluate import load_results, write_atomic
+from tinyrnnt.lab.tables import to_csv
 
 REPORT_FOLDER = "report"  # default place of the report inside the results folder
 
@@ -222,15 +222,6 @@ def training_logs(data: dict) -> list[dict]:
             label = r.run + (f" seed {r.seed}" if len({x.seed for x in data["runs"]}) > 1 else "")
             curves.append({"label": label, "offset": r.total_steps - r.steps, "rows": rows})
     return curves
-
-
-def to_csv(rows: list[dict]) -> str:
-    buf = io.StringIO()
-    if rows:
-        w = csv.DictWriter(buf, fieldnames=list(rows[0]))
-        w.writeheader()
-        w.writerows(rows)
-    return buf.getvalue()
 
 
 def make_report(folder: str | Path, out: str | Path | None = None, against: str | None = None) -> dict:

@@ -173,7 +173,8 @@ def markdown_table(rows: list[dict]) -> str:
     return "\n".join(lines)
 
 
-def _csv(rows: list[dict]) -> str:
+def to_csv(rows: list[dict]) -> str:
+    """Rows (dicts with the same keys) as CSV text, header first; empty text for no rows."""
     buf = io.StringIO()
     if rows:
         w = csv.DictWriter(buf, fieldnames=list(rows[0]))
@@ -188,7 +189,7 @@ def write_tables(folder: Path, arms: dict, results: dict) -> dict:
     seeds = seed_rows(rows)
     parts = [("results", rows), ("comparisons", comparisons)] + ([("seeds", seeds)] if seeds else [])
     for name, table in parts:
-        write_atomic(folder / f"{name}.csv", _csv(table))
+        write_atomic(folder / f"{name}.csv", to_csv(table))
         write_atomic(folder / f"{name}.json", json.dumps(table, indent=1) + "\n")
     short = [{k: c[k] for k in ("system", "against", "role", "seed", "decoding", "split", "list_size", "metric", "steps",
                                 "against_steps", "value", "against_value", "low", "high", "verdict")}

@@ -42,7 +42,7 @@ from pathlib import Path
 import numpy as np
 
 from tinyrnnt.config import ConfigError
-from tinyrnnt.files import check_output_folder
+from tinyrnnt.files import check_output_folder, put_in_place
 from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, expected_frames, make_speakers
 from tinyrnnt.synth.scenario import load_scenario
 from tinyrnnt.synth.sentences import SEEN, RareWord, Sentence, SentenceMaker, TextConfig, build_inventory
@@ -303,13 +303,7 @@ def build_corpus(cfg: CorpusConfig, out_dir: str | Path, overwrite: bool = False
         _write_json(tmp / "card.json", card)
         # Timing is the one thing that differs between identical builds: kept out of the card.
         _write_json(tmp / "build.json", {"build_seconds": round(time.perf_counter() - t0, 2)})
-        if out_dir.exists():
-            old = out_dir.parent / f".{out_dir.name}.old-{os.getpid()}"
-            out_dir.rename(old)
-            tmp.rename(out_dir)
-            shutil.rmtree(old)
-        else:
-            tmp.rename(out_dir)
+        put_in_place(tmp, out_dir)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
