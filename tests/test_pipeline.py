@@ -240,3 +240,33 @@ evaluate: {{splits: [test_unseen], list_sizes: [0]}}
     after = torch.load(ckpt, map_location="cpu", weights_only=False)["state_dict"]
     assert read_history(ckpt)["steps"] == 4  # trained anew for its 4 steps, not stopped at once
     assert any(not torch.equal(before[k], after[k]) for k in before)  # other lists, other weights
+
+
+def test_sounds_like_spellings_reach_the_decoder_and_come_back_as_entries(corpus, monkeypatch):
+    # Decoding is replaced by "write the first sounds-like spelling the decoder was given": the
+    # decoder must see the expanded lists, and scoring must see the listed entry.
+    import tinyrnnt.lab.evaluate as E
+    from tinyrnnt.bias.base import BiasConfig
+    from tinyrnnt.data import CorpusSplit
+    from tinyrnnt.model.transducer import ModelConfig, Transducer
+    from tinyrnnt.text import encode
+
+    split = CorpusSplit(corpus, "test_unseen")
+    model = Transducer(ModelConfig(feature_bins=split.card["features"]["mels"], encoder_dim=16, predictor_dim=16,
+                                   predictor_embed=8, joiner_dim=8, encoder_layers=2),
+                       BiasConfig(kind="trie", cue_dim=8))
+    given = []
+    monkeypatch.setattr(model.bias, "decoder", lambda lists: given.append(lists) or None)
+    inventory = set(split.pronunciations())
+
+    def first_spelling(model, feats, feat_lens, max_symbols=4, biaser=None):
+        return [encode(next(w for w in lst if w not in inventory)) for lst in given[-1]]
+
+    monkeypatch.setattr(E, "greedy_decode", first_spelling)
+    records, summary = E.evaluate(model, split, list_size=10, sounds_like=4)
+    assert summary["sounds_like"] == 4 and len(records) == len(split)
+    for r, lst in zip(records, [x for batch in given for x in batch]):
+        spelling = r["decoded_as"]
+        entry = r["hyp"]
+        assert spelling in lst and entry in lst[:10] and spelling not in inventory
+        assert spelling in E.corpus_key(split).respell(split.pronunciations()[entry], 4)

@@ -69,14 +69,15 @@ def _decode(args) -> int:
     from tinyrnnt.files import MB, check_output_folder
 
     from tinyrnnt import config as C
-    from tinyrnnt.lab.evaluate import read_list_sections
+    from tinyrnnt.lab.evaluate import read_list_pronunciations, read_list_sections
 
     not_decode = [x for x in args.settings if not x.startswith("decode.")]
     if not_decode:
         raise C.ConfigError(f"decode takes only decode.KEY=VALUE settings, got {not_decode[0]!r}")
-    own_list, own_classes, settings = None, None, list(args.settings)
+    own_list, own_classes, own_phones, settings = None, None, None, list(args.settings)
     if args.list_file:
         own_list, own_classes, own_triggers = read_list_sections(args.list_file)
+        own_phones = read_list_pronunciations(args.list_file)
         if own_triggers:  # the file's trigger phrases; decode.triggers in the settings replaces them
             settings.insert(0, f"decode.triggers={json.dumps(own_triggers)}")
     model, cfg, _ = load_model(args.checkpoint)
@@ -87,7 +88,8 @@ def _decode(args) -> int:
     records, summary = evaluate(model, split, list_size=args.list_size, confusable=args.confusable,
                                 max_symbols=cfg.decode.max_symbols, fixed_list=own_list,
                                 fixed_classes=own_classes, search=cfg.decode.search, beam=cfg.decode.beam,
-                                boost=cfg.decode.boost())
+                                boost=cfg.decode.boost(), sounds_like=cfg.decode.sounds_like,
+                                pronunciations=own_phones)
     name = (f"{args.split}.{Path(args.list_file).stem}" if args.list_file
             else f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else ""))
     save_results(out, name, records, summary)

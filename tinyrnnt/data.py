@@ -104,6 +104,7 @@ class CorpusSplit(torch.utils.data.Dataset):
         self._lists: dict[str, np.ndarray] = {}
         self._inventory: list[dict] | None = None
         self._labels: dict[str, tuple[str, ...]] | None = None
+        self._vocabulary: set[str] | None = None
 
     def __len__(self) -> int:
         return len(self.items)
@@ -137,6 +138,23 @@ class CorpusSplit(torch.utils.data.Dataset):
             self._labels = {row["word"]: (row["class"],) + ((f"style:{row['style']}",) if row.get("style") else ())
                             for row in self.inventory()}
         return self._labels
+
+    def pronunciations(self) -> dict[str, str]:
+        """Inventory word -> its ARPAbet phones ("" where the inventory has none)."""
+        return {row["word"]: row.get("phones", "") for row in self.inventory()}
+
+    def training_vocabulary(self) -> set[str]:
+        """Every word of the corpus's training transcripts (train.jsonl; empty if it has none)."""
+        if self._vocabulary is None:
+            path = self.folder / "train.jsonl"
+            words: set[str] = set()
+            if path.is_file():
+                with path.open(encoding="utf-8") as f:
+                    for line in f:
+                        if line.strip():
+                            words.update(json.loads(line)["text"].split())
+            self._vocabulary = words
+        return self._vocabulary
 
     def biasing_list(self, i: int, size: int, confusable: bool = False) -> list[str]:
         """The utterance's rare words, then distractors, `size` entries in all (nested across sizes)."""

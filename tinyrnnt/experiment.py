@@ -24,11 +24,15 @@ class DecodeConfig:
     boost_weight: float = 0.0
     boost_where: str = "anywhere"
     triggers: dict = field(default_factory=dict)
+    # Sounds-like spellings (tinyrnnt.bias.soundslike): each list entry whose pronunciation is known
+    # is also listed in up to this many spellings the recognizer itself writes for its sound, and a
+    # word decoded in one of them is written as the entry; 0 = lists as given.
+    sounds_like: int = 0
 
     def __post_init__(self):
         from tinyrnnt.bias.fusion import BOOST_WHERE, check_weight, parse_triggers
 
-        C.require(self, "decode", positive=("max_symbols", "batch_size", "beam"))
+        C.require(self, "decode", positive=("max_symbols", "batch_size", "beam"), at_least_zero=("sounds_like",))
         if self.search not in SEARCHES:
             raise C.ConfigError(f"decode.search must be one of {list(SEARCHES)}, got {self.search!r}")
         if self.boost_where not in BOOST_WHERE:

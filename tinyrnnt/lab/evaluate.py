@@ -9,6 +9,7 @@ from pathlib import Path
 
 import torch
 
+from tinyrnnt.bias.soundslike import check_phones, corpus_key, expand_list, put_back
 from tinyrnnt.data import CorpusError, CorpusSplit, loader
 from tinyrnnt.decode.greedy import greedy_decode
 from tinyrnnt.score import score_utterance, summarize
@@ -34,7 +35,18 @@ def read_list_sections(path: str | Path) -> tuple[list[str], list[str | None], d
 
     The file: one entry a line; '#' starts a comment; a line "[class]" starts a class section and
     "[class] after: phrase | phrase" also gives the class's trigger phrases (after-trigger boosting).
+    An entry may carry its pronunciation after "=", in ARPAbet phones ("szymiina = SH IH M IY N AH"),
+    read by read_list_pronunciations (for sounds-like spellings).
     """
+    return _parse_list(path)[:3]
+
+
+def read_list_pronunciations(path: str | Path) -> dict[str, str]:
+    """Entry -> the ARPAbet phones given after "=" on its line (entries without one are left out)."""
+    return _parse_list(path)[3]
+
+
+def _parse_list(path: str | Path):
     import re
 
     from tinyrnnt.text import check_text, normalize
@@ -42,7 +54,7 @@ def read_list_sections(path: str | Path) -> tuple[list[str], list[str | None], d
     path = Path(path)
     if not path.is_file():
         raise CorpusError(f"{path}: biasing list file not found")
-    entries, classes, triggers, current = [], [], {}, None
+    entries, classes, triggers, phones, current = [], [], {}, {}, None
     for lineno, raw in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
         line = raw.split("#", 1)[0].strip()
         if line.startswith("["):
@@ -61,22 +73,37 @@ def read_list_sections(path: str | Path) -> tuple[list[str], list[str | None], d
                     raise CorpusError(str(err)) from None
                 triggers[current] = m.group(2)
             continue
+        said = None
+        if "=" in line:
+            line, said = (part.strip() for part in line.split("=", 1))
+            try:
+                said = " ".join(check_phones(said))
+            except ValueError as err:
+                raise CorpusError(f"{path}:{lineno}: {err}") from None
+            if not said:
+                raise CorpusError(f"{path}:{lineno}: expected ARPAbet phones after '=', e.g. "
+                                  f"'szymiina = SH IH M IY N AH'")
         entry = normalize(line)
         if entry:
             check_text(entry, f"{path}:{lineno}")
             if entry not in entries:
                 entries.append(entry)
                 classes.append(current)
+            if said:
+                phones[entry] = said
+        elif said:
+            raise CorpusError(f"{path}:{lineno}: a pronunciation with no entry before '='")
     if not entries:
         raise CorpusError(f"{path}: the biasing list is empty; expected one entry a line")
-    return entries, classes, triggers
+    return entries, classes, triggers, phones
 
 
 def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = False,
              batch_size: int = 64, max_symbols: int = 4, limit: int | None = None,
              fixed_list: list[str] | None = None, search: str = "greedy", beam: int = 4,
              boost: dict | None = None, fixed_classes: list[str | None] | None = None,
-             progress: bool | str = False) -> tuple[list[dict], dict]:
+             progress: bool | str = False, sounds_like: int = 0,
+             pronunciations: dict[str, str] | None = None) -> tuple[list[dict], dict]:
     """Per-utterance records and the corpus summary (score.summarize keys, plus timing).
 
     fixed_list: one biasing list for every utterance (a user's own) instead of the corpus lists;
@@ -84,6 +111,10 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
     search: "greedy" or "beam" (records then carry "nbest": [[text, score], ...]); boost: shallow
     fusion for beam search (DecodeConfig.boost()), entry classes filled in from the corpus.
     progress: a bar with the time left on stderr (a string is its label; True: split and list size).
+    sounds_like: add up to this many sounds-like spellings of each entry whose pronunciation the
+    corpus inventory knows (tinyrnnt.bias.soundslike, the key learned from the corpus's training
+    words), and write words decoded in one of them as the entry before scoring; 0: lists as they are. pronunciations: phones of a user's
+    entries (read_list_pronunciations), over the inventory's.
     """
     from tinyrnnt.decode.beam import beam_search
 
@@ -107,6 +138,9 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
         if unknown:
             raise CorpusError(f"decode.triggers: class {unknown[0]!r} is not a class of the biasing list's entries; "
                               f"known classes: {known}")
+    if sounds_like:
+        phones_of = {**split.pronunciations(), **(pronunciations or {})}
+        vocabulary, key = split.training_vocabulary(), corpus_key(split)
     records, decode_s, audio_s = [], 0.0, 0.0
     total = min(limit, len(split.items)) if limit is not None else len(split.items)
     label = progress if isinstance(progress, str) else f"{split.split} N={list_size}"
@@ -118,19 +152,26 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                 break
             t0 = time.perf_counter()
             nbest = None
+            lists, written = batch["lists"], [{} for _ in batch["lists"]]
+            if sounds_like:
+                lists, written = map(list, zip(*(expand_list(lst, phones_of, vocabulary, key, sounds_like)
+                                                 for lst in batch["lists"])))
             if search == "beam":
                 b = None
                 if boost is not None:
                     classes = ([list(fixed_classes) for _ in batch["lists"]] if fixed_list is not None else
                                [[labels.get(w, (None,))[0] for w in lst] for lst in batch["lists"]])
+                    # a sounds-like spelling takes its entry's class
+                    classes = [c + [c[lst.index(written[k][w])] for w in lists[k][len(lst):]]
+                               for k, (c, lst) in enumerate(zip(classes, batch["lists"]))]
                     b = dict(boost, classes=classes)
-                nbest = beam_search(model, batch["feats"], batch["feat_lens"], batch["lists"], beam=beam,
+                nbest = beam_search(model, batch["feats"], batch["feat_lens"], lists, beam=beam,
                                     max_symbols=max_symbols, boost=b)
                 hyps = [n[0][0] if n else [] for n in nbest]
             else:
                 # a biased model always decodes with its biaser (beam search builds its own per row);
                 # at N = 0 the lists are empty
-                biaser = model.bias.decoder(batch["lists"]) if model.bias is not None else None
+                biaser = model.bias.decoder(lists) if model.bias is not None else None
                 hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
                                      biaser=biaser)
             decode_s += time.perf_counter() - t0
@@ -139,20 +180,24 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                       end="", file=sys.stderr, flush=True)
             audio_s += float(batch["feat_lens"].sum()) * hop
             for k, h in enumerate(hyps):
-                hyp = decode(h)
+                heard = decode(h)
+                hyp = put_back(heard, written[k]) if sounds_like else heard
                 spans = batch["spans"][k]
                 counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], labels)
                 records.append({"id": batch["ids"][k], "ref": batch["texts"][k], "hyp": hyp,
                                 "list_size": list_size, "spans": spans, "counts": counts})
+                if hyp != heard:
+                    records[-1]["decoded_as"] = heard  # before sounds-like spellings were written as entries
                 if nbest is not None:
-                    records[-1]["nbest"] = [[decode(toks), round(score, 4)] for toks, score in nbest[k]]
+                    records[-1]["nbest"] = [[put_back(decode(toks), written[k]), round(score, 4)]
+                                            for toks, score in nbest[k]]
     if progress:
         print(file=sys.stderr)
     summary = summarize(r["counts"] for r in records)
     summary.update({"search": search, "beam": beam if search == "beam" else None,
                     "boost_weight": boost["weight"] if boost else 0.0,
                     "boost_where": boost["where"] if boost else None})
-    summary.update({"list_size": list_size, "confusable": confusable, "decode_seconds": round(decode_s, 3),
+    summary.update({"list_size": list_size, "confusable": confusable, "sounds_like": sounds_like, "decode_seconds": round(decode_s, 3),
                     "audio_seconds": round(audio_s, 1), "rtf": decode_s / max(audio_s, 1e-9)})
     summary.update(exposure_recall(records))
     return records, summary

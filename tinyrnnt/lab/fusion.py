@@ -24,7 +24,7 @@ DEFAULT_WEIGHTS = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
 def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid", list_size: int = 100,
                 beam: int = 4, max_symbols: int = 4, where: str = "anywhere", triggers: dict | None = None,
                 objective: str = "wer", limit: int | None = None, soundalike: str | None = "test_soundalike",
-                label: str = "") -> dict:
+                label: str = "", sounds_like: int = 0) -> dict:
     """{"rows": one per weight, "chosen": weight, "objective": ...}; prints progress on stderr."""
     from tinyrnnt.bias.fusion import check_weight, parse_triggers
     from tinyrnnt.config import ConfigError
@@ -43,19 +43,19 @@ def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid
         print(f"\r  boost weight {w:g} ({i}/{len(weights)}) {label}", end="", file=sys.stderr, flush=True)
         boost = {"weight": w, "where": where, "triggers": parsed} if w != 0 else None
         _, s = evaluate(model, valid, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
-                        boost=boost, limit=limit)
+                        boost=boost, limit=limit, sounds_like=sounds_like)
         row = {"weight": w, "wer": s["wer"], "uwer": s["uwer"], "bwer": s["bwer"], "recall": s["recall"],
                "precision": s["precision"], "false_trigger_rate": s["false_trigger_rate"]}
         if alike is not None:
             _, a = evaluate(model, alike, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
-                            boost=boost, limit=limit)
+                            boost=boost, limit=limit, sounds_like=sounds_like)
             row["soundalike_false_trigger_rate"] = a["false_trigger_rate"]
             row["soundalike_wer"] = a["wer"]
         rows.append(row)
     print(file=sys.stderr)
     best = min(rows, key=lambda r: (r[objective] if r[objective] is not None else float("inf"), r["weight"]))
     return {"rows": rows, "chosen": best["weight"], "objective": objective, "split": split,
-            "list_size": list_size, "where": where}
+            "list_size": list_size, "where": where, "sounds_like": sounds_like}
 
 
 def write_curve(folder: str | Path, name: str, sweep: dict) -> list[Path]:

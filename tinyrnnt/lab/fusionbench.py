@@ -6,7 +6,8 @@ the same settings). The boost weight is tuned on the valid split (lowest WER),
 separately for each model it is applied to, and the chosen weight is used on
 test. Arms on the unseen-name test split at N in {10, 100, 1000}: beam
 baseline, beam control, beam + fusion (on the baseline and on the control),
-beam trie, beam trie + fusion; plus after-trigger fusion, the sound-alike false
+beam trie, beam trie + fusion (and the control and trie arms again with lists that
+carry sounds-like spellings, tinyrnnt.bias.soundslike); plus after-trigger fusion, the sound-alike false
 triggers, the real-time factor of beam 4 with trie cue and boosting at N = 1000
 on one thread, and our beam search against torchaudio's RNNTBeamSearch on the
 same plain model, beam and utterances (WER and time, side by side).
@@ -20,6 +21,7 @@ import time
 from pathlib import Path
 
 from tinyrnnt.lab.evaluate import evaluate, save_results, write_atomic
+from tinyrnnt.lab.triebench import SOUNDS_LIKE  # sounds-like spellings per entry, chosen on valid
 
 HELDOUT = "style:reed"
 # Trigger phrases of the built-in scenario, per entity class (read off its templates: the
@@ -60,39 +62,47 @@ def run_fusion_bench(args) -> dict:
     # 1. the boost weight, tuned on valid for each model it is applied to
     weights = DEFAULT_WEIGHTS if not args.quick else (0.0, 1.0, 2.0, 4.0)
     chosen, curves = {}, {}
-    for key in models:
-        for where in ("anywhere", "after_trigger") if key == "baseline" else ("anywhere",):
-            # the sound-alike false triggers are read off the baseline's curves (reported, not tuned on)
-            sweep = sweep_boost(models[key], corpus, weights, list_size=100, beam=beam, where=where,
-                                triggers=TRIGGERS if where == "after_trigger" else None, limit=limit,
-                                soundalike="test_soundalike" if key == "baseline" else None, label=f"{key} {where}")
-            name = f"boost_curve_{key}_{where}"
-            write_curve(out_dir, name, sweep)
-            chosen[(key, where)], curves[name] = sweep["chosen"], sweep["rows"]
-            _log(f"{key} {where}: chosen boost weight {sweep['chosen']:g} on valid; curve in {out_dir / name}.png")
+    tunings = [(key, where, 0) for key in models
+               for where in (("anywhere", "after_trigger") if key == "baseline" else ("anywhere",))]
+    tunings += [("trie_control", "anywhere", SOUNDS_LIKE), ("trie", "anywhere", SOUNDS_LIKE)]
+    for key, where, sl in tunings:
+        # the sound-alike false triggers are read off the baseline's curves (reported, not tuned on)
+        sweep = sweep_boost(models[key], corpus, weights, list_size=100, beam=beam, where=where,
+                            triggers=TRIGGERS if where == "after_trigger" else None, limit=limit,
+                            soundalike="test_soundalike" if key == "baseline" else None, label=f"{key} {where}",
+                            sounds_like=sl)
+        name = f"boost_curve_{key}_{where}" + (f"_sounds_like{sl}" if sl else "")
+        write_curve(out_dir, name, sweep)
+        chosen[(key, where, sl)], curves[name] = sweep["chosen"], sweep["rows"]
+        _log(f"{name}: chosen boost weight {sweep['chosen']:g} on valid; curve in {out_dir / name}.png")
 
     # 2. the arms on the unseen-name test split
-    arm_plan = {  # name: (model, boost where or None)
-        "beam_baseline": ("baseline", None), "beam_control": ("trie_control", None),
-        "fusion": ("baseline", "anywhere"), "fusion_trigger": ("baseline", "after_trigger"),
-        "control_fusion": ("trie_control", "anywhere"), "beam_trie": ("trie", None),
-        "trie_fusion": ("trie", "anywhere"),
+    arm_plan = {  # name: (model, boost where or None, sounds-like spellings per entry)
+        "beam_baseline": ("baseline", None, 0), "beam_control": ("trie_control", None, 0),
+        "fusion": ("baseline", "anywhere", 0), "fusion_trigger": ("baseline", "after_trigger", 0),
+        "control_fusion": ("trie_control", "anywhere", 0), "beam_trie": ("trie", None, 0),
+        "trie_fusion": ("trie", "anywhere", 0),
+        # lists that also carry sounds-like spellings (tinyrnnt.bias.soundslike), both models alike
+        "beam_control_sounds_like": ("trie_control", None, SOUNDS_LIKE),
+        "control_fusion_sounds_like": ("trie_control", "anywhere", SOUNDS_LIKE),
+        "beam_trie_sounds_like": ("trie", None, SOUNDS_LIKE),
+        "trie_fusion_sounds_like": ("trie", "anywhere", SOUNDS_LIKE),
     }
     results: dict[tuple, tuple] = {}
     test = CorpusSplit(corpus, "test_unseen")
     alike = CorpusSplit(corpus, "test_soundalike")
     t_eval = time.perf_counter()
-    for arm, (key, where) in arm_plan.items():
+    for arm, (key, where, sl) in arm_plan.items():
         boost = None
         if where is not None:
-            boost = {"weight": chosen[(key, where)], "where": where, "triggers": triggers}
+            boost = {"weight": chosen[(key, where, sl)], "where": where, "triggers": triggers}
             if boost["weight"] == 0:
                 boost = None
-        all_sizes = not args.quick and arm not in ("fusion_trigger", "control_fusion")
+        all_sizes = not args.quick and not sl and arm not in ("fusion_trigger", "control_fusion")
         for split, sizes in ((test, (10, 100, 1000) if all_sizes else (100,)), (alike, (100,))):
             for n in sizes:
                 records, summary = evaluate(models[key], split, list_size=n, search="beam", beam=beam, boost=boost,
-                                            limit=limit)
+                                            limit=limit, sounds_like=sl)
                 summary["chosen_boost_weight"] = boost["weight"] if boost else 0.0
                 save_results(out_dir / arm, f"{split.split}.n{n}", records, summary)
                 results[(arm, split.split, n)] = (records, summary)
@@ -114,7 +124,7 @@ def run_fusion_bench(args) -> dict:
     # 3. real-time factor: beam 4, trie cue and boosting at N = 1000, one thread
     torch.set_num_threads(1)
     rtf_limit = min(limit or 300, 300)
-    boost = {"weight": chosen[("trie", "anywhere")] or 1.0, "where": "anywhere", "triggers": triggers}
+    boost = {"weight": chosen[("trie", "anywhere", 0)] or 1.0, "where": "anywhere", "triggers": triggers}
     _, rtf_summary = evaluate(models["trie"], test, list_size=1000, search="beam", beam=beam, boost=boost,
                               limit=rtf_limit)
     rtf = rtf_summary["rtf"]
@@ -153,6 +163,27 @@ def run_fusion_bench(args) -> dict:
         return bool(after) and max(after) > min(v for _, v in vals) + 0.002
 
     base_curve = curves["boost_curve_baseline_anywhere"]
+
+    def sounds_like_figures() -> dict:
+        """The same comparisons with lists that carry sounds-like spellings (both models alike)."""
+        sl = "_sounds_like"
+        held = {arm: s(arm + sl).get(f"bwer:{HELDOUT}") for arm in ("beam_control", "control_fusion", "beam_trie",
+                                                                     "trie_fusion")}
+        out = {"sounds_like_spellings": SOUNDS_LIKE}
+        for arm in ("beam_control", "control_fusion", "beam_trie", "trie_fusion"):
+            out[f"bwer_{arm}{sl}_n100"] = r4(s(arm + sl)["bwer"])
+            out[f"uwer_{arm}{sl}_n100"] = r4(s(arm + sl)["uwer"])
+            out[f"bwer_{arm}_heldout_style{sl}_n100"] = r4(held[arm])
+            out[f"recall_{arm}_heldout_style{sl}_n100"] = r4(s(arm + sl).get(f"recall:{HELDOUT}"))
+            out[f"false_trigger_soundalike_{arm}{sl}"] = r4(s(arm + sl, 100, "test_soundalike")["false_trigger_rate"])
+        out.update({
+            f"trie_fusion_bwer_delta_vs_trie{sl}_ci95_n100": ci("beam_trie" + sl, "trie_fusion" + sl),
+            f"trie_fusion_bwer_delta_vs_control_fusion{sl}_ci95_n100": ci("control_fusion" + sl, "trie_fusion" + sl),
+            f"trie_fusion_uwer_delta_vs_control{sl}_ci95_n100": ci("beam_control" + sl, "trie_fusion" + sl, "uwer"),
+            f"heldout_trie_fusion_reduction_vs_control{sl}": r4(1 - held["trie_fusion"] / held["beam_control"])
+            if held["beam_control"] else None,
+        })
+        return out
     out = {
         "bwer_beam_baseline_n100": r4(s("beam_baseline")["bwer"]),
         "bwer_beam_control_n100": r4(s("beam_control")["bwer"]),
@@ -182,8 +213,9 @@ def run_fusion_bench(args) -> dict:
             1 - s("trie_fusion")[f"bwer:{HELDOUT}"] / s("beam_control")[f"bwer:{HELDOUT}"])
         if s("beam_control").get(f"bwer:{HELDOUT}") else None,
         "false_trigger_soundalike": {arm: r4(s(arm, 100, "test_soundalike")["false_trigger_rate"]) for arm in arm_plan},
-        "chosen_boost_weight": chosen[("baseline", "anywhere")],
-        "chosen_boost_weights": {f"{k}.{w}": v for (k, w), v in chosen.items()},
+        "chosen_boost_weight": chosen[("baseline", "anywhere", 0)],
+        "chosen_boost_weights": {f"{k}.{w}" + (f".sounds_like{sl}" if sl else ""): v for (k, w, sl), v in chosen.items()},
+        **sounds_like_figures(),
         "boost_curve_baseline": base_curve,
         "curve_turns_uwer": turns(base_curve, "uwer"),
         "curve_turns_soundalike_false_triggers": turns(base_curve, "soundalike_false_trigger_rate"),

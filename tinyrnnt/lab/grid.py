@@ -214,7 +214,8 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
             records, summary = evaluate(model, CorpusSplit(cfg.data.corpus, split), list_size=cell.list_size,
                                         max_symbols=dcfg.max_symbols, limit=recipe.evaluate.limit or None,
                                         search=dcfg.search, beam=dcfg.beam, boost=dcfg.boost(),
-                                        progress=False if quiet else f"{cell.id} {split}")
+                                        progress=False if quiet else f"{cell.id} {split}",
+                                        sounds_like=dcfg.sounds_like)
             name = f"grid.{cell.decoding(plan)}.{split}.n{cell.list_size}"
             save_results(Path(cfg.run_dir) / "results", name, records, summary)
             line = {"cell": cell.id, "split": split, **cell.labels, "model": model_id, "run_dir": cfg.run_dir,

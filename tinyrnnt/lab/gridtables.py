@@ -24,11 +24,11 @@ def tuned_weight(model, cfg, dcfg, evaluate_plan, decoding: str, say) -> float:
         sweep = json.loads(saved.read_text(encoding="utf-8"))
         if ([r["weight"] for r in sweep["rows"]] == [float(w) for w in tune.weights] and sweep["split"] == tune.split
                 and sweep["list_size"] == tune.list_size and sweep["where"] == dcfg.boost_where
-                and sweep["objective"] == tune.objective):
+                and sweep["objective"] == tune.objective and sweep.get("sounds_like", 0) == dcfg.sounds_like):
             return sweep["chosen"]
     sweep = sweep_boost(model, cfg.data.corpus, tune.weights, tune.split, tune.list_size, dcfg.beam, dcfg.max_symbols,
                         dcfg.boost_where, dcfg.triggers, tune.objective, evaluate_plan.limit or None,
-                        label=f"{cfg.name} {decoding}")
+                        label=f"{cfg.name} {decoding}", sounds_like=dcfg.sounds_like)
     write_curve(folder, f"boost_curve.{decoding}", sweep)
     say(f"{cfg.name} {decoding}: boost weight {sweep['chosen']:g} chosen on {tune.split}")
     return sweep["chosen"]

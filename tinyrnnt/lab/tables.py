@@ -67,7 +67,7 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
                         sweep = sweep_boost(model, arm.cfg.data.corpus, plan.tune.weights, plan.tune.split,
                                             plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
                                             dcfg.triggers, plan.tune.objective, plan.limit or None,
-                                            label=f"{key} {variant}")
+                                            label=f"{key} {variant}", sounds_like=dcfg.sounds_like)
                         write_curve(folder, f"boost_curve.{variant}", sweep)
                         weight, need_tuning = sweep["chosen"], False
                         if not quiet:
@@ -79,7 +79,8 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
                     bar = False if quiet else f"({count}/{total}) {key} {variant} {split_name} N={n}"
                     records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
                                                 max_symbols=dcfg.max_symbols, limit=plan.limit or None,
-                                                search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar)
+                                                search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar,
+                                                sounds_like=dcfg.sounds_like)
                     summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
                                    boost_weight=weight)
                     save_results(folder, name, records, summary)

@@ -6,7 +6,9 @@ same steps, schedule and data order. Gains are stated against the control; the
 baseline stays as a second reference. Greedy decoding everywhere; the headline
 split (unseen names, N = 100) and the no-list test also with beam search (beam
 4), both arms decoded alike. Also measured: the held-out name style,
-sound-alike false triggers, a repeated short run for determinism, the cue's
+sound-alike false triggers, lists carrying sounds-like spellings of each entry
+(tinyrnnt.bias.soundslike; both arms decode the same lists), a repeated short
+run for determinism, the cue's
 cost against list size, and the whole recipe's time.
 """
 
@@ -21,6 +23,10 @@ from tinyrnnt.lab.evaluate import evaluate, save_results, write_atomic
 RECIPE = "trie_vs_baseline"  # the built-in recipe
 HELDOUT = "style:reed"  # label of the held-out name style in the default corpus
 BEAM = 4  # beam width of the beam-search figures
+# Sounds-like spellings per list entry in the figures with pronunciation-carrying lists. Chosen on
+# the valid split at N = 100 with the trie arm of the run of record (2026-12-02), B-WER by number
+# of spellings: 0: 0.270, 2: 0.201, 4: 0.192, 8: 0.149, 16: 0.156.
+SOUNDS_LIKE = 8
 
 
 def _log(msg: str) -> None:
@@ -122,18 +128,23 @@ def run_trie_bench(args) -> dict:
     torch.set_num_threads(2)
     # (split, N, confusable lists, search): greedy everywhere; beam search (beam 4, the decoder
     # results are usually quoted with) where the headline figures are
-    plan = [("test_unseen", n, False, "greedy") for n in (0, 10, 100, 1000)] + [
-        ("test_unseen", 100, True, "greedy"), ("test", 0, False, "greedy"), ("test_soundalike", 100, False, "greedy"),
-        ("test_unseen", 100, False, "beam"), ("test", 0, False, "beam")]
+    # The last element: sounds-like spellings per list entry (0 = lists as given).
+    plan = [("test_unseen", n, False, "greedy", 0) for n in (0, 10, 100, 1000)] + [
+        ("test_unseen", 100, True, "greedy", 0), ("test", 0, False, "greedy", 0),
+        ("test_soundalike", 100, False, "greedy", 0), ("test_unseen", 100, False, "beam", 0),
+        ("test", 0, False, "beam", 0), ("test_unseen", 100, False, "greedy", SOUNDS_LIKE),
+        ("test_unseen", 100, False, "beam", SOUNDS_LIKE), ("test_soundalike", 100, False, "greedy", SOUNDS_LIKE)]
     results: dict[tuple, tuple] = {}
     for key in arms:
         model = load_model(trained["arms"][key]["last_checkpoint"])[0]
-        for split_name, n, confusable, search in plan:
+        for split_name, n, confusable, search, sounds_like in plan:
             split = CorpusSplit(args.corpus, split_name)
-            records, summary = evaluate(model, split, list_size=n, confusable=confusable, search=search, beam=BEAM)
-            name = f"{split_name}.n{n}" + (".confusable" if confusable else "") + (f".beam{BEAM}" if search == "beam" else "")
+            records, summary = evaluate(model, split, list_size=n, confusable=confusable, search=search, beam=BEAM,
+                                        sounds_like=sounds_like)
+            name = (f"{split_name}.n{n}" + (".confusable" if confusable else "")
+                    + (f".sounds_like{sounds_like}" if sounds_like else "") + (f".beam{BEAM}" if search == "beam" else ""))
             save_results(Path(arms[key].cfg.run_dir) / "results", name, records, summary)
-            results[(key, split_name, n, confusable, search)] = (records, summary)
+            results[(key, split_name, n, confusable, search, sounds_like)] = (records, summary)
             _log(f"{key:20s} {name:28s} WER {summary['wer']:.3f} U-WER {summary['uwer'] or 0:.3f} "
                  f"B-WER {summary['bwer'] if summary['bwer'] is not None else float('nan'):.3f} "
                  f"false-trigger {summary['false_trigger_rate'] or 0:.3f}")
@@ -146,14 +157,41 @@ def run_trie_bench(args) -> dict:
     check_s = time.perf_counter() - t_check
     _log(f"repeated short run gives identical weights and metrics: {same} ({check_s:.0f} s)")
 
-    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first, search="greedy"):
-        return results[(run + seed_key, split, n, confusable, search)][1]
+    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first, search="greedy", sounds_like=0):
+        return results[(run + seed_key, split, n, confusable, search, sounds_like)][1]
 
-    def counts(run, split="test_unseen", n=100, seed_key=first, search="greedy"):
-        return {r["id"]: r["counts"] for r in results[(run + seed_key, split, n, False, search)][0]}
+    def counts(run, split="test_unseen", n=100, seed_key=first, search="greedy", sounds_like=0):
+        return {r["id"]: r["counts"] for r in results[(run + seed_key, split, n, False, search, sounds_like)][0]}
 
-    def reduction(seed_key=first, search="greedy"):
-        return 1 - s("trie", seed_key=seed_key, search=search)["bwer"] / s("trie_control", seed_key=seed_key, search=search)["bwer"]
+    def reduction(seed_key=first, search="greedy", sounds_like=0):
+        return 1 - (s("trie", seed_key=seed_key, search=search, sounds_like=sounds_like)["bwer"]
+                    / s("trie_control", seed_key=seed_key, search=search, sounds_like=sounds_like)["bwer"])
+
+    def sounds_like_figures() -> dict:
+        """Lists that also carry each entry's sounds-like spellings (both arms decode the same lists)."""
+        out = {"sounds_like_spellings": SOUNDS_LIKE}
+        for search, tag in (("greedy", ""), ("beam", f"_beam{BEAM}")):
+            k = dict(search=search, sounds_like=SOUNDS_LIKE)
+            ci = compare_systems(counts("trie_control", **k), counts("trie", **k), rate="bwer")
+            uci = compare_systems(counts("trie_control", **k), counts("trie", **k), rate="uwer")
+            hc, ht = s("trie_control", **k).get(f"bwer:{HELDOUT}"), s("trie", **k).get(f"bwer:{HELDOUT}")
+            out.update({
+                f"bwer_control_sounds_like{tag}_n100": r3(s("trie_control", **k)["bwer"]),
+                f"bwer_trie_sounds_like{tag}_n100": r3(s("trie", **k)["bwer"]),
+                f"bwer_reduction_vs_control_sounds_like{tag}_n100": r3(reduction(search=search, sounds_like=SOUNDS_LIKE)),
+                f"bwer_delta_vs_control_ci95_sounds_like{tag}_n100": [r3(ci["low"]), r3(ci["high"])],
+                f"uwer_control_sounds_like{tag}_n100": r3(s("trie_control", **k)["uwer"]),
+                f"uwer_trie_sounds_like{tag}_n100": r3(s("trie", **k)["uwer"]),
+                f"uwer_delta_vs_control_ci95_sounds_like{tag}_n100": [r3(uci["low"]), r3(uci["high"])],
+                f"bwer_control_heldout_style_sounds_like{tag}_n100": r3(hc),
+                f"bwer_trie_heldout_style_sounds_like{tag}_n100": r3(ht),
+                f"bwer_reduction_heldout_style_sounds_like{tag}_n100": r3(1 - ht / hc) if hc else None,
+                f"recall_trie_heldout_style_sounds_like{tag}_n100": r3(s("trie", **k).get(f"recall:{HELDOUT}")),
+            })
+        for arm in ("trie_control", "trie"):
+            out[f"false_trigger_soundalike_{arm.replace('trie_', '')}_sounds_like"] = r3(
+                s(arm, "test_soundalike", sounds_like=SOUNDS_LIKE)["false_trigger_rate"])
+        return out
 
     def beam_figures() -> dict:
         b = dict(search="beam")
@@ -249,6 +287,7 @@ def run_trie_bench(args) -> dict:
                           for key in arms},
         "same_seed_same_metrics": same,
         **beam_figures(),
+        **sounds_like_figures(),
         "seeds": list(recipe.seeds),
         "bench_wall_s": round(time.perf_counter() - t_start, 1),
     }
