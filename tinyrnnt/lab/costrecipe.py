@@ -35,6 +35,17 @@ class CostPlan:
                                 f"({self.utterances}): the batch is made of the timed utterances")
 
 
+    def check_runs(self, runs) -> None:
+        """The recipe holds a run for each method's model (checked before anything trains)."""
+        from tinyrnnt.lab.cost import METHODS
+
+        needed = sorted({arm for arm, _ in METHODS.values()})
+        missing = [r for r in needed if r not in runs]
+        if self.sizes and missing:
+            raise C.ConfigError(f"cost: measuring costs needs runs named {needed} (one model per biasing method); "
+                                f"missing {missing}; runs: {list(runs)}")
+
+
 def cost_rows(costs: dict) -> dict[str, list[dict]]:
     """Tables for the report: one row per list size with a column per method, and peak memory.
 
@@ -62,10 +73,7 @@ def method_checkpoints(recipe, arms: dict, trained: dict) -> dict[str, str]:
 
     needed = sorted({arm for arm, _ in METHODS.values()})
     first = {arm.run: key for key, arm in arms.items() if arm.seed == recipe.seeds[0]}
-    missing = [r for r in needed if r not in first]
-    if missing:
-        raise C.ConfigError(f"recipe {recipe.name}: cost measurement needs runs named {needed} (one model per "
-                            f"biasing method); missing {missing}; runs: {sorted(first)}")
+    recipe.cost.check_runs(first)
     return {r: trained[first[r]][f"{recipe.evaluate.checkpoint}_checkpoint"] for r in needed}
 
 

@@ -133,6 +133,7 @@ class Recipe:
         if not self.seeds or len(set(self.seeds)) != len(self.seeds):
             raise C.ConfigError(f"seeds must be a non-empty list of distinct whole numbers, got {list(self.seeds)}")
         C.require(self, "recipe", positive=("parallel",))
+        self.cost.check_runs(self.runs)
         if self.grid and self.cost.sizes:
             raise C.ConfigError("a recipe with a grid cannot also measure costs (cost.sizes); give the cost "
                                 "measurement its own recipe (see tinyrnnt/recipes/cost.yaml)")
