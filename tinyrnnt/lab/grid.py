@@ -18,7 +18,9 @@ trained if needed, decoded and scored, and its results appended to one JSON Line
 Cells whose training settings are equal share one model (trained once, loaded
 once). A finished cell is a line of `grid.jsonl` with its resolved config; run
 again, finished models and cells are kept, not recomputed, and a line torn by a
-kill is dropped. Grid models train one after another (not side by side).
+kill is dropped. Grid models train one after another (not side by side); with
+the recipe's `parallel: P` above 1, the cells of each model are decoded and
+scored P at a time, one thread each (tinyrnnt.lab.gridpool).
 """
 
 from __future__ import annotations
@@ -153,14 +155,42 @@ def read_lines(path: Path) -> list[dict]:
     return good
 
 
-def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
-    """Train, decode and score every cell not already in grid.jsonl; returns counts of what it did."""
+def cell_decode(cfg, cell: Cell):
+    """The cell's decode settings on top of its model's (boost weight 1 standing in for "tuned"), and
+    whether its boost weight is to be tuned."""
+    from tinyrnnt.lab.recipes import decode_settings
+
+    settings, tuned = decode_settings(cell.id, cell.decode)
+    return C.apply_overrides(cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()]), tuned
+
+
+def run_cell(model, cfg, dcfg, cell: Cell, split: str, plan: GridPlan, limit: int, facts: dict,
+             progress: bool | str = False) -> dict:
+    """Decode and score one cell on one split, save its hypotheses in its model's results folder,
+    and return its line for grid.jsonl (facts: model, checkpoint, history, start, config)."""
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, save_results
-    from tinyrnnt.lab.gridtables import tuned_weight, write_grid_tables
-    from tinyrnnt.lab.recipes import (EvalPlan, _train_one, _training_part, check_plan, decode_settings, ensure_corpus,
-                                      run_config)
     from tinyrnnt.lab.tables import TABLE_KEYS
+
+    records, summary = evaluate(model, CorpusSplit(cfg.data.corpus, split), list_size=cell.list_size,
+                                max_symbols=dcfg.max_symbols, limit=limit or None,
+                                search=dcfg.search, beam=dcfg.beam, boost=dcfg.boost(),
+                                progress=progress, sounds_like=dcfg.sounds_like)
+    name = f"grid.{cell.decoding(plan)}.{split}.n{cell.list_size}"
+    save_results(Path(cfg.run_dir) / "results", name, records, summary)
+    history = facts["history"]
+    return {"cell": cell.id, "split": split, **cell.labels, "model": facts["model"], "run_dir": cfg.run_dir,
+            "hyps": name, "checkpoint": facts["checkpoint"], "steps": history["steps"],
+            "train_s": round(history["seconds"], 1), "limit": limit,
+            "decode": C.to_dict(dcfg), "boost_weight": dcfg.boost_weight, "n_utts": summary["n_utts"],
+            "decode_seconds": summary["decode_seconds"], **{k: summary.get(k) for k in TABLE_KEYS},
+            "decoding": cell.decode, "start": facts["start"], "model_config": facts["config"]}
+
+
+def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
+    """Train, decode and score every cell not already in grid.jsonl; returns counts of what it did."""
+    from tinyrnnt.lab.gridtables import tuned_weight, write_grid_tables
+    from tinyrnnt.lab.recipes import EvalPlan, _train_one, _training_part, check_plan, ensure_corpus, run_config
     from tinyrnnt.lab.train import load_model, read_history
 
     plan = C.from_dict(GridPlan, recipe.grid, "grid")
@@ -181,53 +211,62 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
     say = (lambda text: None) if quiet else (lambda text: print(text, file=sys.stderr, flush=True))  # noqa: E731
     stats, total = {"trained": 0, "evaluated": 0, "kept": 0}, len(cells) * len(plan.splits)
     count = 0
-    for model_id, cfg in models.items():
-        if start is not None:
-            cfg = C.apply_overrides(cfg, [f"train.init_from={start}"])
-        mine = [c for c in cells if c.model == model_id]
-        config = C.to_dict(cfg)
-        same = {"model_config": config, "limit": recipe.evaluate.limit, "start": start_history}
-        todo = [(c, s) for c in mine for s in plan.splits
-                if {k: done.get((c.id, s), {}).get(k) for k in same} != same
-                or done[(c.id, s)].get("decoding") != c.decode]
-        stats["kept"] += len(mine) * len(plan.splits) - len(todo)
-        count += len(mine) * len(plan.splits) - len(todo)
-        if not todo:
-            continue
-        marker = Path(cfg.run_dir) / "trained.json"
-        already = marker.is_file() and _training_part(json.loads(marker.read_text(encoding="utf-8"))["config"]) \
-            == _training_part(config)
-        trained = _train_one(cfg, quiet, resume=True)
-        stats["trained"] += not already
-        ckpt = trained[f"{recipe.evaluate.checkpoint}_checkpoint"]
-        model, history, weights = load_model(ckpt)[0], read_history(ckpt), {}
-        for cell, split in todo:
-            count += 1
-            settings, tuned = decode_settings(cell.id, cell.decode)
-            dcfg = C.apply_overrides(cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()])
-            if tuned:
-                variant = cell.decoding(plan)
-                if variant not in weights:
-                    weights[variant] = tuned_weight(model, cfg, dcfg, recipe.evaluate, variant, say)
-                dcfg = C.apply_overrides(dcfg, [f"boost_weight={weights[variant]}"])
-            say(f"[{count}/{total}] {cell.id} on {split}")
-            records, summary = evaluate(model, CorpusSplit(cfg.data.corpus, split), list_size=cell.list_size,
-                                        max_symbols=dcfg.max_symbols, limit=recipe.evaluate.limit or None,
-                                        search=dcfg.search, beam=dcfg.beam, boost=dcfg.boost(),
-                                        progress=False if quiet else f"{cell.id} {split}",
-                                        sounds_like=dcfg.sounds_like)
-            name = f"grid.{cell.decoding(plan)}.{split}.n{cell.list_size}"
-            save_results(Path(cfg.run_dir) / "results", name, records, summary)
-            line = {"cell": cell.id, "split": split, **cell.labels, "model": model_id, "run_dir": cfg.run_dir,
-                    "hyps": name, "checkpoint": ckpt, "steps": history["steps"],
-                    "train_s": round(history["seconds"], 1), "limit": recipe.evaluate.limit,
-                    "decode": C.to_dict(dcfg), "boost_weight": dcfg.boost_weight, "n_utts": summary["n_utts"],
-                    "decode_seconds": summary["decode_seconds"], **{k: summary.get(k) for k in TABLE_KEYS},
-                    "decoding": cell.decode, "start": start_history, "model_config": config}
-            with lines_path.open("a", encoding="utf-8") as f:  # one whole line per write
-                f.write(json.dumps(line) + "\n")
-            done[(cell.id, split)] = line
-            stats["evaluated"] += 1
+    pool = None  # parallel > 1: a pool of one-thread workers, started for the first cells to evaluate
+
+    def append(line: dict) -> None:  # only this process writes the file: one whole line per write
+        with lines_path.open("a", encoding="utf-8") as f:
+            f.write(json.dumps(line) + "\n")
+        done[(line["cell"], line["split"])] = line
+        stats["evaluated"] += 1
+
+    try:
+        for model_id, cfg in models.items():
+            if start is not None:
+                cfg = C.apply_overrides(cfg, [f"train.init_from={start}"])
+            mine = [c for c in cells if c.model == model_id]
+            config = C.to_dict(cfg)
+            same = {"model_config": config, "limit": recipe.evaluate.limit, "start": start_history}
+            todo = [(c, s) for c in mine for s in plan.splits
+                    if {k: done.get((c.id, s), {}).get(k) for k in same} != same
+                    or done[(c.id, s)].get("decoding") != c.decode]
+            stats["kept"] += len(mine) * len(plan.splits) - len(todo)
+            count += len(mine) * len(plan.splits) - len(todo)
+            if not todo:
+                continue
+            marker = Path(cfg.run_dir) / "trained.json"
+            already = marker.is_file() and _training_part(json.loads(marker.read_text(encoding="utf-8"))["config"]) \
+                == _training_part(config)
+            trained = _train_one(cfg, quiet, resume=True)
+            stats["trained"] += not already
+            ckpt = trained[f"{recipe.evaluate.checkpoint}_checkpoint"]
+            facts = {"model": model_id, "checkpoint": ckpt, "history": read_history(ckpt), "start": start_history,
+                     "config": config}
+            if recipe.parallel > 1:
+                from tinyrnnt.lab.gridpool import evaluate_cells, start_pool
+
+                pool = pool or start_pool(recipe.parallel)
+                count = evaluate_cells(pool, todo, cfg, facts, plan, recipe.evaluate, append, say, count, total)
+                continue
+            model, weights = load_model(ckpt)[0], {}
+            for cell, split in todo:
+                count += 1
+                dcfg, tuned = cell_decode(cfg, cell)
+                if tuned:
+                    variant = cell.decoding(plan)
+                    if variant not in weights:
+                        weights[variant] = tuned_weight(model, cfg, dcfg, recipe.evaluate, variant, say)
+                    dcfg = C.apply_overrides(dcfg, [f"boost_weight={weights[variant]}"])
+                say(f"[{count}/{total}] {cell.id} on {split}")
+                append(run_cell(model, cfg, dcfg, cell, split, plan, recipe.evaluate.limit, facts,
+                                progress=False if quiet else f"{cell.id} {split}"))
+    except BaseException:
+        if pool is not None:
+            from tinyrnnt.lab.armtraining import stop_pool
+
+            stop_pool(pool)
+        raise
+    if pool is not None:
+        pool.shutdown()
     tables = write_grid_tables(folder, plan, [done[(c.id, s)] for c in cells for s in plan.splits])
     if not quiet:
         print(tables["markdown"])

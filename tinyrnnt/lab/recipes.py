@@ -24,7 +24,6 @@ of `init_from` runs would have summed to. Budgets must be in steps
 
 from __future__ import annotations
 
-import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -32,6 +31,9 @@ import yaml
 
 from tinyrnnt import config as C
 from tinyrnnt.experiment import ExperimentConfig
+from tinyrnnt.lab.armtraining import _saved_settings_match, _train_one, _training_part, train_arms  # noqa: F401
+from tinyrnnt.lab.costrecipe import CostPlan
+from tinyrnnt.lab.preflight import check_plan, check_room, ensure_corpus  # noqa: F401
 from tinyrnnt.resources import resolve_recipe
 
 DEFAULT_RECIPE = "trie_vs_baseline"  # what `tinyrnnt experiment` runs with no recipe named
@@ -116,17 +118,25 @@ class Recipe:
     shared: dict = field(default_factory=dict)
     runs: dict = field(default_factory=lambda: {"baseline": {}})
     evaluate: EvalPlan = field(default_factory=EvalPlan)
-    parallel: int = 1  # arms trained at once, each in its own process (give each train.threads=1)
+    # arms trained at once, each in its own process (give each train.threads=1); in a grid, cells
+    # evaluated at once, each worker on one thread (grid models still train one after another)
+    parallel: int = 1
     seeds: tuple[int, ...] = (0,)  # training seeds (train.seed); every arm is trained once per seed
     controls: bool = True  # an equal-steps control arm (no biasing input) beside every biased run
     pairing: str = "fine_tune"  # or "from_scratch": no arm starts from another, steps summed
     grid: dict = field(default_factory=dict)  # axes whose every cell is run (tinyrnnt.lab.grid); {} = no grid
+    cost: CostPlan = field(default_factory=CostPlan)  # cost measurement after evaluation (no sizes = none)
 
     def __post_init__(self):
         if self.pairing not in PAIRINGS:
             raise C.ConfigError(f"pairing must be one of {PAIRINGS}, got {self.pairing!r}")
         if not self.seeds or len(set(self.seeds)) != len(self.seeds):
             raise C.ConfigError(f"seeds must be a non-empty list of distinct whole numbers, got {list(self.seeds)}")
+        C.require(self, "recipe", positive=("parallel",))
+        self.cost.check_runs(self.runs)
+        if self.grid and self.cost.sizes:
+            raise C.ConfigError("a recipe with a grid cannot also measure costs (cost.sizes); give the cost "
+                                "measurement its own recipe (see tinyrnnt/recipes/cost.yaml)")
         if self.grid:
             from tinyrnnt.lab.grid import GridPlan
 
@@ -253,204 +263,34 @@ def _ordered(plans: dict) -> list:
     return [(run, plans[run]) for run in done]
 
 
-def ensure_corpus(cfg: ExperimentConfig, quiet: bool = False, build: bool = False) -> None:
-    """Build the corpus when it is missing, but only at the default path or when `build` is asked:
-    a mistyped `data.corpus` is an error, not a new corpus built where nobody looks."""
-    from tinyrnnt.data import CorpusError, DataConfig
-    from tinyrnnt.synth.card import format_card
-    from tinyrnnt.synth.corpus import build_corpus
-
-    from tinyrnnt.audio.corpus import is_manifest_folder, refresh_cache
-
-    if is_manifest_folder(cfg.data.corpus):  # audio manifests: their corpus folder is cached inside
-        refresh_cache(cfg.data.corpus, quiet=quiet)
-        return
-    if not (Path(cfg.data.corpus) / "card.json").is_file():
-        if not build and Path(cfg.data.corpus) != Path(DataConfig().corpus):
-            raise CorpusError(f"{cfg.data.corpus}: no corpus here (no card.json); check data.corpus, or build "
-                              f"one with `tinyrnnt corpus --out {cfg.data.corpus}`")
-        card = build_corpus(cfg.corpus, cfg.data.corpus, quiet=quiet)
-        if not quiet:
-            print(format_card(card), file=sys.stderr)
-
-
-def _training_part(config: dict) -> dict:
-    """A saved config without its decoding settings, which do not change what is trained (settings
-    added since it was saved read as their defaults)."""
-    from tinyrnnt.experiment import with_defaults
-
-    return {k: v for k, v in with_defaults(config).items() if k != "decode"}
-
-
-def _saved_settings_match(saved: Path, cfg: ExperimentConfig) -> bool:
-    """Does the config saved in a run folder train what `cfg` trains? Decoding settings aside;
-    paths compared once resolved; settings added since it was saved take their defaults."""
-    import dataclasses
-
-    if not saved.is_file():
-        return False
-    try:
-        old = C.load(ExperimentConfig, saved)
-    except (C.ConfigError, OSError):
-        return False
-
-    def norm(c: ExperimentConfig) -> dict:
-        plain = dataclasses.replace(c, run_dir="", data=dataclasses.replace(c.data, corpus=""),
-                                    train=dataclasses.replace(c.train, init_from=""))
-        paths = [str(Path(p).resolve()) if p else "" for p in (c.run_dir, c.data.corpus, c.train.init_from)]
-        return {**_training_part(C.to_dict(plain)), "paths": paths}
-
-    return norm(old) == norm(cfg)
-
-
-def _train_one(cfg: ExperimentConfig, quiet: bool, resume: bool = False) -> dict:
-    """Train one arm; a finished arm leaves `trained.json` (its config and result) in its run folder.
-
-    With resume, an arm whose trained.json matches its config is not trained again, and an arm
-    interrupted after a checkpoint continues from its last.ckpt.
-    """
-    import json
-
-    from tinyrnnt.lab.evaluate import write_atomic
-    from tinyrnnt.lab.train import train
-
-    marker = Path(cfg.run_dir) / "trained.json"
-    if resume and marker.is_file():
-        done = json.loads(marker.read_text(encoding="utf-8"))
-        if _training_part(done["config"]) == _training_part(C.to_dict(cfg)):
-            if not quiet:
-                print(f"{cfg.run_dir}: already trained, kept", file=sys.stderr)
-            return done["result"]
-    again = resume and (Path(cfg.run_dir) / "checkpoints" / "last.ckpt").is_file()
-    if again and marker.is_file() or again and not _saved_settings_match(Path(cfg.run_dir) / "config.yaml", cfg):
-        # subtle: a checkpoint of other settings (a finished run of an older recipe, say) is not
-        # continued: it would pass for a run of these settings. Train anew; train() keeps the
-        # earlier checkpoints one generation back.
-        print(f"{cfg.run_dir}: trained with other settings; training anew", file=sys.stderr)
-        again = False
-    r = train(cfg, quiet=quiet, resume=again)
-    result = {"best_checkpoint": str(r.best_checkpoint), "last_checkpoint": str(r.last_checkpoint),
-              "train_seconds": r.train_seconds, "steps": r.steps, "history": r.history}
-    write_atomic(marker, json.dumps({"config": C.to_dict(cfg), "result": result}, indent=1) + "\n")
-    return result
-
-
-def train_arms(arms: dict[str, Arm], parallel: int, quiet: bool, resume: bool = False) -> dict[str, dict]:
-    """Train every arm, each once its source has finished; with parallel > 1, that many at once.
-
-    On 2 cores two one-thread runs side by side finish sooner than the same runs
-    one after the other with two threads each (measured: a second thread buys ~1.3x).
-    An arm that starts from another takes that arm's *last* checkpoint, so its
-    history counts exactly the steps of its source.
-    """
-    def ready_config(arm: Arm, done: dict) -> ExperimentConfig:
-        if arm.source is None:
-            return arm.cfg
-        return C.apply_overrides(arm.cfg, [f"train.init_from={done[arm.source]['last_checkpoint']}"])
-
-    done: dict[str, dict] = {}
-    if parallel <= 1 or len(arms) == 1:
-        for key, arm in arms.items():
-            done[key] = _train_one(ready_config(arm, done), quiet, resume)
-        return done
-    import multiprocessing as mp
-    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-
-    pending = dict(arms)
-    with ProcessPoolExecutor(max_workers=parallel, mp_context=mp.get_context("spawn")) as pool:
-        try:
-            running = {}
-            while pending or running:
-                for key in [k for k, a in pending.items() if a.source is None or a.source in done]:
-                    if len(running) >= parallel:
-                        break
-                    running[pool.submit(_train_one, ready_config(pending.pop(key), done), True, resume)] = key
-                finished, _ = wait(running, return_when=FIRST_COMPLETED)
-                for f in finished:
-                    done[running.pop(f)] = f.result()
-        except BaseException:
-            # subtle: a signal sent to this process alone (SIGTERM from a job scheduler, say) never
-            # reaches the workers, and leaving the pool waits for them to finish training; stop them.
-            # Their checkpoints are written whole, so --resume continues where they stood.
-            for proc in list((getattr(pool, "_processes", None) or {}).values()):
-                proc.kill()
-            pool.shutdown(wait=False, cancel_futures=True)
-            raise
-    return {key: done[key] for key in arms}
-
-
-RECIPE_LEVEL = ("name", "out_dir", "evaluate", "parallel", "seeds", "controls", "pairing", "grid")
+RECIPE_LEVEL = ("name", "out_dir", "evaluate", "parallel", "seeds", "controls", "pairing", "grid", "cost")
 
 
 def split_overrides(recipe: Recipe, overrides) -> tuple[Recipe, list[str]]:
     """`key=value` overrides of the recipe itself (evaluate.*, seeds, parallel, controls, pairing,
-    name, out_dir, grid.*) applied to it; the rest returned, for every run's experiment config."""
+    name, out_dir, grid.*, cost.*) applied to it; the rest returned, for every run's experiment config."""
+    from tinyrnnt.lab.gridrecipe import set_in_grid
+
     own = [o for o in overrides if o.split("=", 1)[0].split(".")[0].strip() in RECIPE_LEVEL]
     into_grid = [o for o in own if o.split("=", 1)[0].strip().startswith("grid.")]
     if into_grid:  # the grid is a free-form mapping: its settings are set inside it, then checked whole
-        import copy
-        import dataclasses
-
-        grid = copy.deepcopy(recipe.grid)
-        for o in into_grid:
-            key, _, value = o.partition("=")
-            *path, last = key.strip().split(".")[1:]
-            node = grid
-            for part in path:
-                node = node.setdefault(part, {})
-            try:
-                node[last] = yaml.safe_load(value)
-            except yaml.YAMLError as err:
-                raise C.ConfigError(f"{key.strip()}: not valid YAML: {C.yaml_problem(err)}") from None
-        recipe = dataclasses.replace(recipe, grid=grid)
+        recipe = set_in_grid(recipe, into_grid)
     rest = [o for o in own if o not in into_grid]
     return C.apply_overrides(recipe, rest), [o for o in overrides if o not in own]  # checks in __post_init__
 
 
-def check_plan(plan: EvalPlan, corpus: str) -> None:
-    """Splits and list sizes of the evaluation plan exist in the corpus: checked before training."""
-    import json
-
-    from tinyrnnt.data import corpus_folder
-
-    card = json.loads((corpus_folder(corpus) / "card.json").read_text(encoding="utf-8"))
-    splits = sorted(card["splits"])
-    missing = [s for s in plan.splits if s not in card["splits"]]
-    if missing:
-        raise C.ConfigError(f"evaluate.splits: {missing} not in corpus {corpus}; its splits: {splits}")
-    largest = max((card["splits"][s].get("lists", {}).get("max", 0) for s in plan.splits), default=0)
-    too_big = [n for n in plan.list_sizes if n < 0 or n > largest]
-    if too_big:
-        raise C.ConfigError(f"evaluate.list_sizes: {too_big} outside 0..{largest}, the list sizes corpus "
-                            f"{corpus} offers")
-
-
-def check_room(recipe: Recipe, arms: dict[str, Arm]) -> None:
-    """Before anything trains: the results folder can be written and its disk holds every arm still
-    to train (their checkpoints and logs) and the tables."""
-    from tinyrnnt.files import MB, check_output_folder
-    from tinyrnnt.lab.train import run_bytes
-    from tinyrnnt.model.transducer import Transducer
-
-    to_train = [a.cfg for a in arms.values() if not (Path(a.cfg.run_dir) / "checkpoints" / "last.ckpt").is_file()]
-    need = sum(run_bytes(Transducer(c.model, c.bias if c.bias.kind != "none" else None)) for c in to_train)
-    check_output_folder(Path(recipe.out_dir) / recipe.name, need + MB, "results folder")
-
-
 def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = False, report: bool = True) -> list[dict]:
-    """Corpus if needed, train every arm, evaluate, write the tables and render the report
-    (tinyrnnt.lab.report). With resume, finished arms and finished evaluations (same config, same
-    checkpoint) are kept, not recomputed."""
+    """Corpus if needed, train every arm, evaluate, write the tables, measure costs when the recipe
+    asks (tinyrnnt.lab.costrecipe) and render the report (tinyrnnt.lab.report). With resume,
+    finished arms and finished evaluations (same config, same checkpoint) are kept, not recomputed."""
+    from tinyrnnt.lab.rendering import render
     from tinyrnnt.lab.tables import evaluate_arms, write_tables
 
     recipe, overrides = split_overrides(read_recipe(path), list(overrides))
     if recipe.grid:  # a grid runs its cells (finished ones are always kept) and writes grid tables
-        from tinyrnnt.lab.grid import run_grid
+        from tinyrnnt.lab.gridrecipe import run_grid_recipe
 
-        rows = run_grid(recipe, overrides, quiet)["rows"]
-        if report:
-            _render(Path(recipe.out_dir) / recipe.name)
-        return rows
+        return run_grid_recipe(recipe, overrides, quiet, report)
     arms = expand_arms(recipe, overrides)
     check_room(recipe, arms)
     for corpus_of in {arm.cfg.data.corpus: arm.cfg for arm in arms.values()}.values():  # each corpus once
@@ -460,15 +300,10 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
     results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
     print(tables["markdown"])
+    if recipe.cost.sizes:
+        from tinyrnnt.lab.costrecipe import run_cost
+
+        run_cost(recipe, arms, trained, quiet)
     if report:
-        _render(Path(recipe.out_dir) / recipe.name)
+        render(Path(recipe.out_dir) / recipe.name)
     return tables["rows"]
-
-
-def _render(folder: Path) -> None:
-    """The report of a finished results folder; prints the headline and where the report is."""
-    from tinyrnnt.lab.report import make_report
-
-    made = make_report(folder)
-    print("## Headline\n\n" + "\n".join(f"- {s}" for s in made["headline_text"]))
-    print(f"\nreport: {made['html']} (one file, opens in any browser); summary: {made['markdown']}")
