@@ -81,13 +81,18 @@ def test_respellings_are_best_first_and_unique():
     assert check_phones("SH IH1 M") == ["SH", "IH", "M"]
 
 
-def test_list_expansion_skips_vocabulary_words_and_keeps_the_first_owner():
-    key = RespellingKey({"S": [("s", 1.0)], "IY": [("ee", 0.6), ("ea", 0.4)], "N": [("n", 1.0)]})
-    entries = ["szijn", "ciin"]
-    phones = {"szijn": "S IY N", "ciin": "S IY N"}
-    out, written = expand_list(entries, phones, vocabulary={"seen"}, key=key)
-    assert out == ["szijn", "ciin", "sean"] and written == {"sean": "szijn"}
+def test_list_expansion_skips_words_near_the_vocabulary_and_keeps_the_first_owner():
+    key = RespellingKey({"S": [("s", 1.0)], "IY": [("ee", 0.6), ("ea", 0.4)], "N": [("n", 1.0)],
+                         "K": [("k", 1.0)], "L": [("l", 1.0)]})
+    entries = ["szijn", "ciin", "kliij"]
+    phones = {"szijn": "S IY N", "ciin": "S IY N", "kliij": "K L IY"}
+    out, written = expand_list(entries, phones, vocabulary={"then"}, key=key)
+    assert out == entries + ["seen", "sean", "klee", "klea"] and written["seen"] == written["sean"] == "szijn"
     assert put_back("call sean now", written) == "call szijn now"
+    # "seen" is a word of the training text; "sean" is one letter from it; "klea" one from "clea"
+    cache = {}
+    out, written = expand_list(entries, phones, vocabulary={"seen", "clea"}, key=key, cache=cache)
+    assert out == entries + ["klee"] and cache[("S IY N", 4)] == []
     assert expand_list(entries, {}, set(), key) == (entries, {})
 
 

@@ -185,20 +185,47 @@ def _merge_rare_finals(counts) -> dict:
 
 
 def expand_list(entries: list[str], phones_of: Mapping[str, str], vocabulary: set[str], key: RespellingKey,
-                limit: int = DEFAULT_LIMIT) -> tuple[list[str], dict[str, str]]:
+                limit: int = DEFAULT_LIMIT, cache: dict | None = None) -> tuple[list[str], dict[str, str]]:
     """The list with each entry's sounds-like spellings added after all entries, and
-    spelling -> the entry it stands for. Spellings that are an entry, a vocabulary word or
-    another entry's spelling already are left out (the first entry keeps a shared one)."""
+    spelling -> the entry it stands for. Spellings that are an entry, another entry's spelling
+    already (the first entry keeps a shared one), a vocabulary word or one edit from one are left out."""
     extra: dict[str, str] = {}
     taken = set(entries)
+    cache = {} if cache is None else cache  # phones -> usable spellings; one cache per vocabulary and key
     for entry in entries:
         phones = phones_of.get(entry)
         if not phones:
             continue
-        for spelling in key.respell(phones, limit):
-            if spelling not in taken and spelling not in vocabulary and spelling not in extra:
+        if (phones, limit) not in cache:
+            cache[phones, limit] = [w for w in key.respell(phones, limit) if not near_word(w, vocabulary)]
+        for spelling in cache[phones, limit]:
+            if spelling not in taken and spelling not in extra:
                 extra[spelling] = entry
     return list(entries) + list(extra), extra
+
+
+LETTERS = "abcdefghijklmnopqrstuvwxyz'"
+
+
+def near_word(spelling: str, vocabulary: set[str]) -> bool:
+    """Is `spelling` a vocabulary word or one letter edit (insert, delete, substitute) from one?
+    Such a spelling would let the entry take over a common word the model writes all the time.
+
+    >>> near_word("klowd", {"cloud"}), near_word("clowd", {"cloud"}), near_word("shimeena", {"cloud"})
+    (False, True, False)
+    """
+    if spelling in vocabulary:
+        return True
+    n = len(spelling)
+    for i in range(n + 1):
+        if i < n and spelling[:i] + spelling[i + 1:] in vocabulary:
+            return True
+        for c in LETTERS:
+            if spelling[:i] + c + spelling[i:] in vocabulary:
+                return True
+            if i < n and c != spelling[i] and spelling[:i] + c + spelling[i + 1:] in vocabulary:
+                return True
+    return False
 
 
 def put_back(hyp: str, written: Mapping[str, str]) -> str:

@@ -140,7 +140,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                               f"known classes: {known}")
     if sounds_like:
         phones_of = {**split.pronunciations(), **(pronunciations or {})}
-        vocabulary, key = split.training_vocabulary(), corpus_key(split)
+        vocabulary, key, spellings = split.training_vocabulary(), corpus_key(split), {}
     records, decode_s, audio_s = [], 0.0, 0.0
     total = min(limit, len(split.items)) if limit is not None else len(split.items)
     label = progress if isinstance(progress, str) else f"{split.split} N={list_size}"
@@ -154,7 +154,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             nbest = None
             lists, written = batch["lists"], [{} for _ in batch["lists"]]
             if sounds_like:
-                lists, written = map(list, zip(*(expand_list(lst, phones_of, vocabulary, key, sounds_like)
+                lists, written = map(list, zip(*(expand_list(lst, phones_of, vocabulary, key, sounds_like, spellings)
                                                  for lst in batch["lists"])))
             if search == "beam":
                 b = None
