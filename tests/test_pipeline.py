@@ -1,6 +1,7 @@
 """Smoke test: synthesize, train (baseline and trie), decode, score, table — a tiny corpus in seconds."""
 
 import json
+from pathlib import Path
 
 import torch
 
@@ -270,3 +271,57 @@ def test_sounds_like_spellings_reach_the_decoder_and_come_back_as_entries(corpus
         entry = r["hyp"]
         assert spelling in lst and entry in lst[:10] and spelling not in inventory
         assert spelling in E.corpus_key(split).respell(split.pronunciations()[entry], 4)
+
+
+def test_bf16_training_keeps_the_loss_in_float32_and_records_the_precision(corpus, tmp_path):
+    # bfloat16 autocast on the CPU (torch.autocast, a general-purpose library feature): the joiner's
+    # logits come out in bfloat16, the transducer loss is computed in float32.
+    from tinyrnnt import config as C
+    from tinyrnnt.config import ConfigError
+    from tinyrnnt.data import CorpusSplit, loader
+    from tinyrnnt.experiment import ExperimentConfig
+    from tinyrnnt.lab.train import read_history, train
+    from tinyrnnt.model.training import chosen_precision, cpu_has_bf16_units
+    from tinyrnnt.model.transducer import Transducer
+
+    cfg = C.apply_overrides(ExperimentConfig(), [
+        f"data.corpus={corpus}", "data.batch_size=8", "data.valid_subset=8", f"run_dir={tmp_path / 'bf16'}",
+        "model={encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}",
+        "train.steps=3", "train.minutes=0", "train.validate_every_steps=3", "train.threads=1",
+        "train.snapshot_minutes=0", "train.precision=bf16"])
+    model = Transducer(cfg.model)
+    batch = next(iter(loader(CorpusSplit(corpus, "train", limit=8), 8)))
+    with torch.autocast("cpu", dtype=torch.bfloat16):
+        out = model.losses(batch["feats"], batch["feat_lens"], batch["targets"], batch["target_lens"])
+        logits = model._run(batch["feats"], batch["feat_lens"], batch["targets"], batch["target_lens"],
+                            None, None, False)[0]
+    assert logits.dtype == torch.bfloat16
+    assert out["rnnt"].dtype == torch.float32 and torch.isfinite(out["rnnt"])
+    result = train(cfg, quiet=True)
+    assert read_history(result.last_checkpoint)["runs"][-1]["precision"] == "bf16"
+    assert chosen_precision("auto") == ("bf16" if cpu_has_bf16_units() else "fp32")
+    assert chosen_precision("fp32") == "fp32" and chosen_precision("auto", "gpu") == "bf16"
+    with pytest.raises(ConfigError, match="train.precision must be one of"):
+        C.apply_overrides(ExperimentConfig(), ["train.precision=fp16"])
+
+
+def test_quickstart_benchmark_parts_on_a_tiny_corpus(corpus, tmp_path):
+    # The benchmark's own code on the tiny corpus: the main job run as a new process in an empty
+    # folder and its headline read back; the training-step comparison of every biasing input.
+    import shutil
+
+    from tinyrnnt.lab.quickstartbench import run_quickstart, step_costs
+
+    tiny = ["model.encoder_dim=32", "model.predictor_dim=32", "model.predictor_embed=16", "model.joiner_dim=24",
+            "model.encoder_layers=2", "train.steps=4", "data.batch_size=16", "data.valid_subset=16",
+            "train.validate_every_steps=4", "train.snapshot_minutes=0", "evaluate.list_sizes=[10,100]"]
+    own = tmp_path / "corpus"
+    shutil.copytree(corpus, own)
+    out = run_quickstart(tmp_path / "work", (f"data.corpus={own}", *tiny), corpus=own)
+    assert out["train_steps"] == {"baseline": 4, "trie": 8, "trie_control": 8}
+    assert out["bwer_delta_ci_low"] <= out["bwer_delta_ci_high"] and 0 <= out["prob_improvement"] <= 1
+    assert sum(out["quickstart_stages_s"].values()) == pytest.approx(out["quickstart_s"], abs=0.2)
+    assert out["report_path"].endswith("report.html") and Path(out["report_path"]).is_file()
+    costs = step_costs(str(corpus), batch_size=2, repeats=1, list_size=10)
+    assert set(costs["step_cost_ratios"]) == {"trie", "attention", "trie+attention"}
+    assert all(v > 0 for v in costs["train_step_ms"].values())

@@ -98,8 +98,14 @@ def result_rows(arms: dict, results: dict) -> list[dict]:
         rows.append({"run": arm.run, "seed": arm.seed, "decoding": variant, "boost_weight": summary.get("boost_weight"),
                      "split": split, "list_size": n,
                      "steps": summary["history"]["steps"], "train_s": round(summary["history"]["seconds"], 1),
-                     **{k: summary.get(k) for k in TABLE_KEYS}})
+                     "precision": precision_of(summary["history"]), **{k: summary.get(k) for k in TABLE_KEYS}})
     return rows
+
+
+def precision_of(history: dict) -> str:
+    """The training precision of a model's own run ("fp32" for checkpoints from before the setting)."""
+    runs = history.get("runs") or [{}]
+    return runs[-1].get("precision", "fp32")
 
 
 def verdict(cmp: dict) -> str:

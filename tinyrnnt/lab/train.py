@@ -115,7 +115,13 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False, call
                         # our length buckets give each process its share under distributed training
                         # (data.shard); Lightning's own sampler would undo the bucketing
                         use_distributed_sampler=False)
+    from tinyrnnt.model.training import chosen_precision
+
+    precision = chosen_precision(cfg.train.precision, str(cfg.train.trainer.get("accelerator", "cpu")))
+    if precision == "bf16":
+        trainer_args["precision"] = "bf16-mixed"
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
+    task.precision_used = str(cfg.train.trainer.get("precision", precision))
     try:
         trainer = L.Trainer(**trainer_args)
     except TypeError as err:

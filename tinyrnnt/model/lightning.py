@@ -34,6 +34,7 @@ class TransducerTask(L.LightningModule):
         # Training this model descends from (set from the init_from checkpoint's history):
         # optimiser steps and training seconds before this run, and the runs they came from.
         self.prior = {"steps": 0, "seconds": 0.0, "runs": []}
+        self.precision_used = "fp32"  # set by lab.train from train.precision (and the Trainer's own setting)
         self._t0 = None
 
     def _common_step(self, batch, stage: str):
@@ -79,7 +80,8 @@ class TransducerTask(L.LightningModule):
 
     def history(self, steps: int) -> dict:
         """Total training behind the weights after `steps` steps of this run, summed through init_from."""
-        own = {"run": self.cfg.run_dir, "steps": int(steps), "seconds": round(self.train_seconds, 2)}
+        own = {"run": self.cfg.run_dir, "steps": int(steps), "seconds": round(self.train_seconds, 2),
+               "precision": self.precision_used}
         return {"steps": self.prior["steps"] + own["steps"],
                 "seconds": round(self.prior["seconds"] + self.train_seconds, 2),
                 "runs": self.prior["runs"] + [own]}

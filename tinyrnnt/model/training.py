@@ -37,6 +37,10 @@ class TrainConfig:
     init_from: str = ""  # checkpoint to start from (weights only; new parts keep their init);
     # in a recipe, "run:NAME" means the best checkpoint of the earlier run NAME
     trainer: dict = field(default_factory=dict)  # passed to lightning.Trainer unchanged
+    # Matrix precision of training: "fp32"; "bf16" (autocast to bfloat16, the loss kept in float32);
+    # "auto": bf16 on a GPU or where the CPU has bfloat16 matrix units (AMX or AVX-512 BF16), fp32
+    # elsewhere. What was used is recorded in the checkpoint's history and shown in results.
+    precision: str = "fp32"
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
@@ -46,9 +50,41 @@ class TrainConfig:
                 at_least_zero=("warmup_steps", "grad_clip", "time_masks", "time_mask_frames", "freq_masks",
                                "freq_mask_bins", "steps", "minutes", "early_stop_patience", "snapshot_minutes",
                                "bias_lr_scale"))
+        if self.precision not in PRECISIONS:
+            raise ConfigError(f"train.precision must be one of {list(PRECISIONS)}, got {self.precision!r}")
         if self.loss_implementation not in ("ours", "torchaudio"):
             raise ConfigError(f"train.loss_implementation must be 'ours' or 'torchaudio', "
                               f"got {self.loss_implementation!r}")
+
+
+PRECISIONS = ("fp32", "bf16", "auto")
+
+
+def cpu_has_bf16_units(cpuinfo: str | None = None) -> bool:
+    """Does the CPU have bfloat16 matrix instructions (AMX-BF16 or AVX-512 BF16)? Read from the
+    flags of /proc/cpuinfo (Linux); False where they cannot be read.
+
+    >>> cpu_has_bf16_units("flags : fpu sse2 avx512f amx_bf16 amx_tile"), cpu_has_bf16_units("flags : sse2")
+    (True, False)
+    """
+    if cpuinfo is None:
+        try:
+            with open("/proc/cpuinfo", encoding="utf-8") as f:
+                cpuinfo = f.read()
+        except OSError:
+            return False
+    flags = {w for line in cpuinfo.splitlines() if line.startswith("flags") for w in line.split(":", 1)[-1].split()}
+    return bool(flags & {"amx_bf16", "avx512_bf16"})
+
+
+def chosen_precision(setting: str, accelerator: str = "cpu") -> str:
+    """What train.precision means on this machine: "fp32" or "bf16"."""
+    if setting != "auto":
+        return setting
+    import torch
+
+    on_gpu = accelerator in ("gpu", "cuda") or (accelerator == "auto" and torch.cuda.is_available())
+    return "bf16" if on_gpu or cpu_has_bf16_units() else "fp32"
 
 
 def spec_mask(feats, feat_lens, cfg: TrainConfig, generator=None):

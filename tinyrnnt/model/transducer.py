@@ -285,10 +285,13 @@ class Transducer(nn.Module):
 
         keep = self.ctc_head is not None
         logits, enc_lens, first = self._run(feats, feat_lens, targets, target_lens, lists, None, keep)
-        out = {"rnnt": transducer_loss(logits, targets, enc_lens, target_lens, implementation=implementation)}
+        with torch.autocast(logits.device.type, enabled=False):  # under bf16 autocast the loss stays float32
+            out = {"rnnt": transducer_loss(logits.float(), targets, enc_lens, target_lens,
+                                           implementation=implementation)}
         out["loss"] = out["rnnt"]
         if keep:
-            out["ctc"] = self.ctc_loss(first[0], first[1], targets, target_lens)
+            with torch.autocast(first[0].device.type, enabled=False):
+                out["ctc"] = self.ctc_loss(first[0].float(), first[1], targets, target_lens)
             out["loss"] = out["rnnt"] + self.cfg.ctc_weight * out["ctc"]
         return out
 
