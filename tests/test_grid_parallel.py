@@ -139,3 +139,43 @@ def test_sigterm_stops_the_grid_workers_and_a_restart_finishes_the_rest(corpus, 
     assert lines_path.read_bytes().startswith(before) and len({(g["cell"], g["split"]) for g in
                                                                read_lines(lines_path)}) == 36
     shutil.rmtree(tmp_path / "runs")
+
+
+def test_recipe_arms_evaluated_side_by_side_give_the_serial_results(corpus, tmp_path, capfd):
+    # A plain recipe (no grid) with parallel: 2 evaluates its arms in worker processes; every
+    # result and comparison equals the serial run's apart from timing.
+    from tinyrnnt.lab.recipes import run_recipe
+
+    def recipe(parallel):
+        path = tmp_path / f"arms{parallel}.yaml"
+        path.write_text(f"""# Tiny: baseline, trie arm and its control, two decodings.
+name: arms
+out_dir: {tmp_path / 'runs'}
+parallel: {parallel}
+shared:
+  data: {{corpus: {corpus}, batch_size: 8, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 4, minutes: 0, validate_every_steps: 2, threads: 1, snapshot_minutes: 0}}
+runs:
+  baseline: {{}}
+  trie: {{bias: {{kind: trie, cue_dim: 8}}, train: {{init_from: "run:baseline", steps: 2}}}}
+evaluate:
+  splits: [test_unseen]
+  list_sizes: [0, 10]
+  decoding: {{greedy: {{}}, beam: {{search: beam, beam: 2}}}}
+""")
+        return path
+
+    def strip(rows):
+        return [{k: v for k, v in r.items() if k not in ("decode_seconds", "rtf")} for r in rows]
+
+    serial = run_recipe(recipe(1), quiet=True)
+    folder = tmp_path / "runs" / "arms"
+    comparisons = json.loads((folder / "comparisons.json").read_text())
+    for results in folder.glob("*/results"):
+        shutil.rmtree(results)
+    capfd.readouterr()
+    parallel = run_recipe(recipe(2), quiet=False, resume=True)  # the arms are kept, every evaluation redone
+    assert "evaluating 3 arms side by side, 2 at a time" in capfd.readouterr().err
+    assert strip(parallel) == strip(serial) and len(serial) == 3 * 2 * 2
+    assert json.loads((folder / "comparisons.json").read_text()) == comparisons

@@ -297,7 +297,7 @@ def run_recipe(path=None, overrides=(), quiet: bool = False, resume: bool = Fals
         ensure_corpus(corpus_of, quiet)
         check_plan(recipe.evaluate, corpus_of.data.corpus)
     trained = train_arms(arms, recipe.parallel, quiet, resume)
-    results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume)
+    results = evaluate_arms(arms, trained, recipe.evaluate, quiet, resume, parallel=recipe.parallel)
     tables = write_tables(Path(recipe.out_dir) / recipe.name, arms, results)
     print(tables["markdown"])
     if recipe.cost.sizes:

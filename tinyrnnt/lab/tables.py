@@ -26,13 +26,50 @@ TABLE_KEYS = ("wer", "cer", "uwer", "uwer_subdel", "uwer_ins_near_biased", "bwer
 COMPARED = ("wer", "uwer", "bwer")
 
 
-def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = False, resume: bool = False) -> dict:
+def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = False, resume: bool = False,
+                  parallel: int = 1) -> dict:
     """{(arm key, decoding, split, list size): (records, summary)}; summaries carry the checkpoint's
     history. A decoding whose boost weight is "tuned" gets its weight from a sweep on plan.tune's
     split for each arm (the curve lands in the arm's results folder), then uses it on every split.
 
     With resume, an evaluation already on disk for the same checkpoint, limit and decoding is read back.
+    With parallel > 1, arms are evaluated side by side, one worker process (one thread) per arm at a
+    time; the numbers are those of the serial loop (the same function evaluates each arm), and the
+    results keep the arms' order.
     """
+    total = len(arms) * len(plan.variants()) * len(plan.splits) * len(plan.list_sizes)
+    jobs = [(key, arm, trained[key][f"{plan.checkpoint}_checkpoint"]) for key, arm in arms.items()]
+    if parallel <= 1 or len(jobs) < 2:
+        results, count = {}, 0
+        for key, arm, ckpt in jobs:
+            results.update(evaluate_arm(key, arm, ckpt, plan, quiet, resume, (count, total)))
+            count += total // len(arms)
+        return results
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+
+    from tinyrnnt.lab.armtraining import stop_pool
+    from tinyrnnt.lab.gridpool import _one_thread
+
+    if not quiet:
+        print(f"evaluating {len(jobs)} arms side by side, {min(parallel, len(jobs))} at a time (one thread each)",
+              file=sys.stderr)
+    pool = ProcessPoolExecutor(max_workers=min(parallel, len(jobs)), mp_context=mp.get_context("spawn"),
+                               initializer=_one_thread)
+    try:
+        futures = [pool.submit(evaluate_arm, key, arm, ckpt, plan, quiet, resume, None) for key, arm, ckpt in jobs]
+        parts = [f.result() for f in futures]
+    except BaseException:
+        stop_pool(pool)
+        raise
+    pool.shutdown()
+    return {k: v for part in parts for k, v in part.items()}
+
+
+def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, progress: tuple[int, int] | None) -> dict:
+    """One arm's evaluations (every decoding, split and list size), as evaluate_arms describes.
+    progress: (evaluations done before this arm, all evaluations) for the bars; None (side by side):
+    no bars, a line per evaluation."""
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, load_results, save_results
     from tinyrnnt.lab.fusion import sweep_boost, write_curve
@@ -40,54 +77,52 @@ def evaluate_arms(arms: dict, trained: dict[str, dict], plan, quiet: bool = Fals
     from tinyrnnt.lab.train import load_model, read_history
 
     results = {}
-    count, total = 0, len(arms) * len(plan.variants()) * len(plan.splits) * len(plan.list_sizes)
-    for key, arm in arms.items():
-        ckpt = trained[key][f"{plan.checkpoint}_checkpoint"]
-        model = None
-        history = read_history(ckpt)
-        folder = Path(arm.cfg.run_dir) / "results"
-        for variant, raw in plan.variants().items():
-            settings, tuned = decode_settings(variant, raw)
-            dcfg = C.apply_overrides(arm.cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()])
-            weight, need_tuning = dcfg.boost_weight, tuned
-            for split_name in plan.splits:
-                for n in plan.list_sizes:
-                    name = f"{split_name}.n{n}" if variant == "greedy" else f"{variant}.{split_name}.n{n}"
-                    count += 1
-                    kept = load_results(folder, name) if resume else None
-                    if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
-                            and kept[1].get("history") == history and kept[1].get("decoding") == raw:
-                        results[(key, variant, split_name, n)] = kept
-                        if tuned:  # the weight tuned before, read back
-                            weight, need_tuning = kept[1]["boost_weight"], False
-                        continue
-                    if model is None:
-                        model, _, _ = load_model(ckpt)
-                    if need_tuning:
-                        sweep = sweep_boost(model, arm.cfg.data.corpus, plan.tune.weights, plan.tune.split,
-                                            plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
-                                            dcfg.triggers, plan.tune.objective, plan.limit or None,
-                                            label=f"{key} {variant}", sounds_like=dcfg.sounds_like)
-                        write_curve(folder, f"boost_curve.{variant}", sweep)
-                        weight, need_tuning = sweep["chosen"], False
-                        if not quiet:
-                            print(f"{key} {variant}: boost weight {weight:g} chosen on {plan.tune.split}",
-                                  file=sys.stderr)
-                    boost = None
-                    if weight != 0:
-                        boost = C.apply_overrides(dcfg, [f"boost_weight={weight}"]).boost()
-                    bar = False if quiet else f"({count}/{total}) {key} {variant} {split_name} N={n}"
-                    records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
-                                                max_symbols=dcfg.max_symbols, limit=plan.limit or None,
-                                                search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar,
-                                                sounds_like=dcfg.sounds_like)
-                    summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
-                                   boost_weight=weight)
-                    save_results(folder, name, records, summary)
-                    results[(key, variant, split_name, n)] = (records, summary)
+    count, total = progress or (0, 0)
+    model = None
+    history = read_history(ckpt)
+    folder = Path(arm.cfg.run_dir) / "results"
+    for variant, raw in plan.variants().items():
+        settings, tuned = decode_settings(variant, raw)
+        dcfg = C.apply_overrides(arm.cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()])
+        weight, need_tuning = dcfg.boost_weight, tuned
+        for split_name in plan.splits:
+            for n in plan.list_sizes:
+                name = f"{split_name}.n{n}" if variant == "greedy" else f"{variant}.{split_name}.n{n}"
+                count += 1
+                kept = load_results(folder, name) if resume else None
+                if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
+                        and kept[1].get("history") == history and kept[1].get("decoding") == raw:
+                    results[(key, variant, split_name, n)] = kept
+                    if tuned:  # the weight tuned before, read back
+                        weight, need_tuning = kept[1]["boost_weight"], False
+                    continue
+                if model is None:
+                    model, _, _ = load_model(ckpt)
+                if need_tuning:
+                    sweep = sweep_boost(model, arm.cfg.data.corpus, plan.tune.weights, plan.tune.split,
+                                        plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
+                                        dcfg.triggers, plan.tune.objective, plan.limit or None,
+                                        label=f"{key} {variant}", sounds_like=dcfg.sounds_like)
+                    write_curve(folder, f"boost_curve.{variant}", sweep)
+                    weight, need_tuning = sweep["chosen"], False
                     if not quiet:
-                        print(f"evaluated {key} ({variant}) on {split_name} at N={n}: WER {summary['wer']:.3f}",
+                        print(f"{key} {variant}: boost weight {weight:g} chosen on {plan.tune.split}",
                               file=sys.stderr)
+                boost = None
+                if weight != 0:
+                    boost = C.apply_overrides(dcfg, [f"boost_weight={weight}"]).boost()
+                bar = False if quiet or progress is None else f"({count}/{total}) {key} {variant} {split_name} N={n}"
+                records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
+                                            max_symbols=dcfg.max_symbols, limit=plan.limit or None,
+                                            search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar,
+                                            sounds_like=dcfg.sounds_like)
+                summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
+                               boost_weight=weight)
+                save_results(folder, name, records, summary)
+                results[(key, variant, split_name, n)] = (records, summary)
+                if not quiet:
+                    print(f"evaluated {key} ({variant}) on {split_name} at N={n}: WER {summary['wer']:.3f}",
+                          file=sys.stderr, flush=True)
     return results
 
 
