@@ -2,6 +2,7 @@
 no traceback, and nothing written."""
 
 import json
+import os
 import subprocess
 import sys
 
@@ -37,6 +38,17 @@ def _fails(capsys, argv, *needles):
         assert needle in err, err
     return err
 
+
+
+def children(pid):  # direct children, read from /proc (Linux)
+    out = []
+    for d in os.listdir("/proc"):
+        try:
+            if d.isdigit() and int(open(f"/proc/{d}/stat").read().rsplit(")", 1)[1].split()[1]) == pid:
+                out.append(int(d))
+        except (OSError, IndexError, ValueError):
+            pass
+    return out
 
 def test_bad_settings_are_named_before_anything_is_written(corpus, tmp_path, capsys):
     run = tmp_path / "run"
@@ -155,7 +167,6 @@ evaluate: {{splits: [test], list_sizes: [0]}}
 def test_sigterm_stops_parallel_training_workers_too(corpus, tmp_path):
     """SIGTERM sent to the command alone (as a job scheduler does) exits 143 with one line, and the
     training workers of a parallel recipe, which never see that signal, are stopped, not orphaned."""
-    import os
     import signal
     import time
 
@@ -180,16 +191,6 @@ evaluate: {{splits: [test], list_sizes: [0]}}
     deadline = time.time() + 120
     while not list(folder.glob("*/checkpoints/last.ckpt")) and time.time() < deadline:
         time.sleep(0.05)
-
-    def children(pid):  # direct children, read from /proc (Linux)
-        out = []
-        for d in os.listdir("/proc"):
-            try:
-                if d.isdigit() and int(open(f"/proc/{d}/stat").read().rsplit(")", 1)[1].split()[1]) == pid:
-                    out.append(int(d))
-            except (OSError, IndexError, ValueError):
-                pass
-        return out
 
     workers = children(proc.pid)
     assert workers, "the recipe should be training in worker processes"

@@ -3,7 +3,6 @@ but for timing, each boost weight tuned once per model, only the parent writes g
 stops the workers."""
 
 import json
-import os
 import shutil
 import signal
 import subprocess
@@ -13,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from test_cli import TINY  # the same tiny corpus settings as the CLI tests
+from test_cli import TINY, children  # the CLI tests' tiny corpus settings and /proc reader
 from tinyrnnt.lab.grid import read_lines, run_grid
 from tinyrnnt.lab.recipes import read_recipe
 from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
@@ -93,17 +92,6 @@ def test_parallel_cells_give_the_serial_lines_and_tune_once_per_model(corpus, tm
     assert (again["evaluated"], again["kept"], again["trained"]) == (0, 12, 0)
 
 
-def _children(pid):  # direct children, read from /proc (Linux)
-    out = []
-    for d in os.listdir("/proc"):
-        try:
-            if d.isdigit() and int(open(f"/proc/{d}/stat").read().rsplit(")", 1)[1].split()[1]) == pid:
-                out.append(int(d))
-        except (OSError, IndexError, ValueError):
-            pass
-    return out
-
-
 def _alive(pid):
     try:
         return open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"
@@ -121,7 +109,7 @@ def test_sigterm_stops_the_grid_workers_and_a_restart_finishes_the_rest(corpus, 
         if lines_path.is_file() and lines_path.read_text().count("\n") >= 1:
             break
         time.sleep(0.02)
-    workers = _children(proc.pid)
+    workers = children(proc.pid)
     assert len(workers) >= 2, "the grid should be evaluating in worker processes"
     proc.send_signal(signal.SIGTERM)
     _, err = proc.communicate(timeout=120)

@@ -60,6 +60,9 @@ def corpus_folder(path: str | Path) -> Path:
     return path
 
 
+_VOCABULARIES: dict[tuple[str, int], set[str]] = {}  # (train.jsonl path, its mtime) -> its words
+
+
 class CorpusSplit(torch.utils.data.Dataset):
     """One split of a corpus folder: manifest, memory-mapped frames, biasing lists."""
 
@@ -144,16 +147,20 @@ class CorpusSplit(torch.utils.data.Dataset):
         return {row["word"]: row.get("phones", "") for row in self.inventory()}
 
     def training_vocabulary(self) -> set[str]:
-        """Every word of the corpus's training transcripts (train.jsonl; empty if it has none)."""
+        """Every word of the corpus's training transcripts (train.jsonl; empty if it has none); read
+        once per process and corpus folder (every split of a corpus, every evaluation, shares it)."""
         if self._vocabulary is None:
             path = self.folder / "train.jsonl"
-            words: set[str] = set()
-            if path.is_file():
-                with path.open(encoding="utf-8") as f:
-                    for line in f:
-                        if line.strip():
-                            words.update(json.loads(line)["text"].split())
-            self._vocabulary = words
+            stamp = (str(path.resolve()), path.stat().st_mtime_ns if path.is_file() else 0)
+            if stamp not in _VOCABULARIES:
+                words: set[str] = set()
+                if path.is_file():
+                    with path.open(encoding="utf-8") as f:
+                        for line in f:
+                            if line.strip():
+                                words.update(json.loads(line)["text"].split())
+                _VOCABULARIES[stamp] = words
+            self._vocabulary = _VOCABULARIES[stamp]
         return self._vocabulary
 
     def biasing_list(self, i: int, size: int, confusable: bool = False) -> list[str]:
@@ -176,6 +183,21 @@ class CorpusSplit(torch.utils.data.Dataset):
         inv = self.inventory()
         # subtle: lists of recorded corpora differ in length; NO_LIST_ENTRY pads the shorter rows
         return own + [inv[int(j)]["word"] for j in rows[i][: max(size - len(own), 0)] if j != NO_LIST_ENTRY]
+
+
+def quantize_frames(frames: np.ndarray, offset: float, step: float) -> tuple[np.ndarray, int, np.ndarray]:
+    """Log-mel frames (T, F) as the uint8 bytes corpus folders store (value = offset + step * byte,
+    CorpusSplit.features reads them back), how many values fell outside the byte range (clipped),
+    and the values the bytes stand for, float64 (for the corpus's normalisation statistics).
+
+    >>> q, clipped, deq = quantize_frames(np.array([[-1.0, 0.5, 300.0]]), 0.0, 1.0)
+    >>> q.tolist(), clipped, deq.tolist()
+    ([[0, 0, 255]], 2, [[0.0, 0.0, 255.0]])
+    """
+    q = np.round((frames - offset) / step)
+    clipped = int(((q < 0) | (q > 255)).sum())
+    q = np.clip(q, 0, 255).astype(np.uint8)
+    return q, clipped, offset + step * q.astype(np.float64)
 
 
 def _load_array(path: Path) -> np.ndarray:

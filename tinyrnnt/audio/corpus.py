@@ -36,6 +36,7 @@ import numpy as np
 
 from tinyrnnt.audio.features import AudioError, FeatureConfig, LogMel, read_audio
 from tinyrnnt.audio.manifest import Line, ManifestError, read_manifest
+from tinyrnnt.data import quantize_frames
 from tinyrnnt.files import check_output_folder, put_in_place
 from tinyrnnt.synth.scenario import RARE_CLASSES
 
@@ -181,10 +182,8 @@ def _write_split(tmp: Path, split: str, lines: list[Line], cfg: AudioCorpusConfi
             continue
         secs += len(wave) / cfg.features.sample_rate
         f = logmel(wave)
-        q = np.round((f - cfg.feature_offset) / cfg.feature_step)
-        clipped += int(((q < 0) | (q > 255)).sum())
-        q = np.clip(q, 0, 255).astype(np.uint8)
-        deq = cfg.feature_offset + cfg.feature_step * q.astype(np.float64)
+        q, n_clipped, deq = quantize_frames(f, cfg.feature_offset, cfg.feature_step)
+        clipped += n_clipped
         total += deq.sum(0)
         total_sq += (deq ** 2).sum(0)
         shard.append(q)

@@ -239,14 +239,15 @@ def put_back(hyp: str, written: Mapping[str, str]) -> str:
     return " ".join(written.get(w, w) for w in hyp.split())
 
 
-_KEYS: dict[str, RespellingKey] = {}
+_KEYS: dict[tuple[str, int], RespellingKey] = {}
 
 
 def corpus_key(split) -> RespellingKey:
-    """The respelling key learned from a corpus's training words (cached per corpus folder):
+    """The respelling key learned from a corpus's training words:
     rare words with their inventory phones, other words with their first cmudict pronunciation
-    (words with neither are left out)."""
-    folder = str(split.folder)
+    (words with neither are left out); cached per corpus folder and version of its training text."""
+    train = split.folder / "train.jsonl"
+    folder = (str(split.folder.resolve()), train.stat().st_mtime_ns if train.is_file() else 0)  # a rebuilt corpus learns anew
     if folder not in _KEYS:
         from tinyrnnt.synth.lexicon import cmu, strip_stress
 

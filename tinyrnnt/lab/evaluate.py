@@ -161,9 +161,9 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                 if boost is not None:
                     classes = ([list(fixed_classes) for _ in batch["lists"]] if fixed_list is not None else
                                [[labels.get(w, (None,))[0] for w in lst] for lst in batch["lists"]])
-                    # a sounds-like spelling takes its entry's class
-                    classes = [c + [c[lst.index(written[k][w])] for w in lists[k][len(lst):]]
-                               for k, (c, lst) in enumerate(zip(classes, batch["lists"]))]
+                    for k, (c, lst) in enumerate(zip(classes, batch["lists"])):  # a spelling: its entry's class
+                        class_of = dict(zip(lst, c))
+                        classes[k] = c + [class_of[written[k][w]] for w in lists[k][len(lst):]]
                     b = dict(boost, classes=classes)
                 nbest = beam_search(model, batch["feats"], batch["feat_lens"], lists, beam=beam,
                                     max_symbols=max_symbols, boost=b)

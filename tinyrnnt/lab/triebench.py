@@ -140,6 +140,8 @@ def run_trie_bench(args) -> dict:
     for key in arms:
         model = load_model(trained["arms"][key]["last_checkpoint"])[0]
         for split_name, n, confusable, search, sounds_like in plan:
+            if sounds_like and key.startswith("baseline"):
+                continue  # the sounds-like figures compare the trie arm with its control only
             split = CorpusSplit(args.corpus, split_name)
             records, summary = evaluate(model, split, list_size=n, confusable=confusable, search=search, beam=BEAM,
                                         sounds_like=sounds_like)

@@ -42,6 +42,7 @@ from pathlib import Path
 import numpy as np
 
 from tinyrnnt.config import ConfigError
+from tinyrnnt.data import quantize_frames
 from tinyrnnt.files import check_output_folder, put_in_place
 from tinyrnnt.synth.acoustics import AcousticConfig, Renderer, expected_frames, make_speakers
 from tinyrnnt.synth.scenario import load_scenario
@@ -344,10 +345,8 @@ def _write_splits(cfg, tmp: Path, splits, speakers, spk_rng, t0, quiet) -> dict:
             clipped = 0
             for feats in results:
                 for f in feats:
-                    q = np.round((f - cfg.feature_offset) / cfg.feature_step)
-                    clipped += int(((q < 0) | (q > 255)).sum())
-                    q = np.clip(q, 0, 255).astype(np.uint8)
-                    deq = cfg.feature_offset + cfg.feature_step * q.astype(np.float64)
+                    q, n_clipped, deq = quantize_frames(f, cfg.feature_offset, cfg.feature_step)
+                    clipped += n_clipped
                     total += deq.sum(0)
                     total_sq += (deq ** 2).sum(0)
                     shard.append(q)
