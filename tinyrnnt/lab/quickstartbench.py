@@ -45,7 +45,7 @@ def run_quickstart(work: Path, settings: tuple[str, ...] = (), corpus: Path | No
                               cwd=work, stdout=f, stderr=subprocess.STDOUT)
     total = time.perf_counter() - t0
     if done.returncode != 0:
-        raise RuntimeError(f"the quickstart failed (exit {done.returncode}); its output: {log}")
+        raise SystemExit(f"error: the quickstart failed (exit {done.returncode}); its output is in {log}")
     folder = work / "runs" / "quickstart"
     # stages by the wall clock: the corpus is whole when its build.json is written, training ends with
     # the last arm's trained.json; evaluation and the report take the rest
