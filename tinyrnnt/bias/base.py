@@ -74,11 +74,18 @@ class ListSampling:
     # text has, never the first letter) or "any" (any letter a-z put in or swapped in anywhere, the
     # first letter too), so following the list does not depend on the letters it asks for.
     respell_letters: str = "seen_pairs"
+    # A respelled word the list then leaves out (an empty list, a dropped true word): "keep" trains
+    # on the respelling anyway; "restore" gives it its own spelling back, since nothing in the
+    # utterance says how it is spelled (the trie recipe's setting).
+    respell_unlisted: str = "keep"
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
 
         require(self, "bias.sampling", fraction=("keep_true", "empty_list", "confusable", "respell_few_shot"))
+        if self.respell_unlisted not in ("restore", "keep"):
+            raise ConfigError(f"bias.sampling.respell_unlisted must be one of ['restore', 'keep'], "
+                              f"got {self.respell_unlisted!r}")
         if self.respell_letters not in RESPELL_LETTERS:
             raise ConfigError(f"bias.sampling.respell_letters must be one of {list(RESPELL_LETTERS)}, "
                               f"got {self.respell_letters!r}")

@@ -39,8 +39,29 @@ class TrainingLists:
         if self.cfg.respell_few_shot > 0:
             item = self.respell(item, rng)
         originals = [sp["respelled_from"] for sp in item["spans"] if "respelled_from" in sp]
-        item["list"] = self.sample([sp["word"] for sp in item["spans"]], rng, originals)
+        words = self.sample([sp["word"] for sp in item["spans"]], rng, originals)
+        if originals and self.cfg.respell_unlisted == "restore":
+            item = self.restore_unlisted(item, set(words))
+        item["list"] = words
         return item
+
+    def restore_unlisted(self, item: dict, listed: set[str]) -> dict:
+        """Respelled words the list did not keep (an empty list, a dropped true word) get their own
+        spelling back: nothing in such an utterance says how it is spelled, so training on the
+        respelling would only teach the model to guess spellings when it has no list."""
+        from tinyrnnt.text import encode
+
+        if all(sp["word"] in listed for sp in item["spans"] if "respelled_from" in sp):
+            return item
+        words = item["text"].split()
+        spans = []
+        for sp in item["spans"]:
+            if "respelled_from" in sp and sp["word"] not in listed:
+                words[sp["index"]] = sp["respelled_from"]
+                sp = {k: v for k, v in sp.items() if k != "respelled_from"} | {"word": sp["respelled_from"]}
+            spans.append(sp)
+        text = " ".join(words)
+        return {**item, "text": text, "tokens": encode(text), "spans": spans}
 
     def _spellings(self, word: str) -> list[str]:
         """Every spelling of the word's sound in the inventory (a respelled word: just itself)."""

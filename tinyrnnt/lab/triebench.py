@@ -95,8 +95,10 @@ def run_trie_bench(args) -> dict:
         ("test", 0, False, "beam", 0), ("test_unseen", 100, False, "greedy", SOUNDS_LIKE),
         ("test_unseen", 100, False, "beam", SOUNDS_LIKE), ("test_soundalike", 100, False, "greedy", SOUNDS_LIKE)]
     # Further training seeds are decoded only where their spread is reported: the trie arm and its
-    # control on test_unseen at N = 100, greedy, with lists as given and with sounds-like spellings.
-    seed_plan = [("test_unseen", 100, False, "greedy", 0), ("test_unseen", 100, False, "greedy", SOUNDS_LIKE)]
+    # control on test_unseen at N = 100, greedy, with lists as given and with sounds-like spellings,
+    # and on the in-domain test with no list.
+    seed_plan = [("test_unseen", 100, False, "greedy", 0), ("test_unseen", 100, False, "greedy", SOUNDS_LIKE),
+                 ("test", 0, False, "greedy", 0)]
     first = f"/seed{recipe.seeds[0]}" if len(recipe.seeds) > 1 else ""
     results: dict[tuple, tuple] = {}
     for key in arms:
@@ -198,6 +200,8 @@ def run_trie_bench(args) -> dict:
         return round(1 - s("trie", **k).get(f"bwer:{HELDOUT}") / control, 4) if control else None
 
     heldout_reductions = [heldout_reduction(k) for k in seeds]
+    no_list_deltas = [round(s("trie", "test", 0, seed_key=k)["wer"] - s("trie_control", "test", 0, seed_key=k)["wer"], 4)
+                      for k in seeds]
     out = {
         "bwer_baseline_n100": r3(s("baseline")["bwer"]),
         "bwer_control_n100": r3(s("trie_control")["bwer"]),
@@ -239,6 +243,7 @@ def run_trie_bench(args) -> dict:
         "bwer_reduction_vs_control_seeds": reductions,
         "bwer_reduction_vs_control_sounds_like_seeds": sl_reductions,
         "bwer_reduction_heldout_style_sounds_like_seeds": heldout_reductions,
+        "wer_delta_vs_control_n0_seeds": no_list_deltas,
         "cue_cost_ratio_5000_10": round(ratio, 3),
         "cue_ms_n10": round(small, 3),
         "cue_ms_n5000": round(large, 3),
@@ -274,7 +279,8 @@ def run_trie_bench(args) -> dict:
 
         for name, values in (("bwer_reduction_vs_control_seeds", reductions),
                              ("bwer_reduction_vs_control_sounds_like_seeds", sl_reductions),
-                             ("bwer_reduction_heldout_style_sounds_like_seeds", heldout_reductions)):
+                             ("bwer_reduction_heldout_style_sounds_like_seeds", heldout_reductions),
+                             ("wer_delta_vs_control_n0_seeds", no_list_deltas)):
             if None not in values:
                 out[f"{name}_mean"] = round(statistics.fmean(values), 4)
                 out[f"{name}_sd"] = round(statistics.stdev(values), 4)
