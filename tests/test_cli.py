@@ -204,3 +204,38 @@ evaluate: {{splits: [test], list_sizes: [0]}}
         time.sleep(0.2)
     assert not [w for w in workers if os.path.exists(f"/proc/{w}")
                 and open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"]
+
+
+def test_sigterm_stops_a_benchmarks_training_workers(corpus, tmp_path):
+    """`python -m tinyrnnt.bench trie` killed with SIGTERM mid-training exits 143 with one line and
+    stops the recipe's training workers (which never see the signal) instead of orphaning them."""
+    import signal
+    import time
+
+    proc = subprocess.Popen([sys.executable, "-m", "tinyrnnt.bench", "trie", "--corpus", str(corpus),
+                             "--run-dir", str(tmp_path / "runs" / "trie"), "--minutes", "3"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    workers = []
+
+    def alive():
+        return [w for w in workers if os.path.exists(f"/proc/{w}")
+                and open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"]
+
+    try:
+        deadline = time.time() + 420  # the cue timing and the corpus come first; slow on a busy machine
+        while not list((tmp_path / "runs").rglob("logs")) and time.time() < deadline:  # a worker trains
+            time.sleep(0.1)
+        workers = children(proc.pid)
+        assert len(workers) >= 2, "the benchmark should be training in a worker process"
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=120)
+        assert proc.returncode == 143, err
+        assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
+        deadline = time.time() + 30
+        while alive() and time.time() < deadline:
+            time.sleep(0.2)
+        assert not alive()
+    finally:  # a failed check leaves nothing running
+        proc.kill()
+        for w in alive():
+            os.kill(w, signal.SIGKILL)

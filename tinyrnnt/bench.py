@@ -209,9 +209,20 @@ def main(argv=None) -> int:
     args.run_dir = args.run_dir or f"runs/bench-{args.name}"
     if args.name == "train" and args.minutes is None:
         args.minutes = 10.0
-    result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "fusion": bench_fusion,
-              "attention": bench_attention, "faults": bench_faults, "audio": bench_audio,
-              "quickstart": bench_quickstart}[args.name](args)
+    import signal
+
+    from tinyrnnt.cli import Terminated, _terminated
+
+    # SIGTERM is handled as Ctrl-C is, so the training workers of a recipe stop with the benchmark
+    # (lab.armtraining kills its pool on KeyboardInterrupt) rather than live on as orphans.
+    signal.signal(signal.SIGTERM, _terminated)
+    try:
+        result = {"corpus": bench_corpus, "train": bench_train, "trie": bench_trie, "fusion": bench_fusion,
+                  "attention": bench_attention, "faults": bench_faults, "audio": bench_audio,
+                  "quickstart": bench_quickstart}[args.name](args)
+    except KeyboardInterrupt as stop:
+        print("interrupted; arms already trained are kept (bench trie --fresh --resume continues)", file=sys.stderr)
+        return 143 if isinstance(stop, Terminated) else 130
     result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
     print(json.dumps(result))
     return 0
