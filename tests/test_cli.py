@@ -148,7 +148,10 @@ evaluate: {{splits: [test], list_sizes: [0]}}
 """)
     folder = tmp_path / "runs" / "interrupted"
     cmd = [sys.executable, "-m", "tinyrnnt", "experiment", "--quiet", "--recipe", str(recipe)]
-    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    # subtle: a shell starts background jobs with SIGINT ignored, and children inherit that; the
+    # command is given the default disposition so the test holds however the suite was started.
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.time() + 120
     while not (folder / "second" / "checkpoints" / "last.ckpt").is_file() and time.time() < deadline:
         time.sleep(0.05)
