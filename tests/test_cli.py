@@ -50,6 +50,34 @@ def children(pid):  # direct children, read from /proc (Linux)
             pass
     return out
 
+def live(pids):
+    """The processes of `pids` still running (not gone, not a zombie), read from /proc (Linux)."""
+    out = []
+    for pid in pids:
+        try:
+            if open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0] != "Z":
+                out.append(pid)
+        except OSError:
+            pass
+    return out
+
+
+def stop_with_sigterm(proc, workers, timeout=120):
+    """SIGTERM to the command alone: it exits 143 with one `interrupted` line, and within 30 s none
+    of its `workers` (which never see that signal) is left running."""
+    import signal
+    import time
+
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=timeout)
+    assert proc.returncode == 143, err
+    assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
+    deadline = time.monotonic() + 30
+    while live(workers) and time.monotonic() < deadline:
+        time.sleep(0.2)
+    assert not live(workers)
+
+
 def test_bad_settings_are_named_before_anything_is_written(corpus, tmp_path, capsys):
     run = tmp_path / "run"
     base = ["train", f"data.corpus={corpus}", f"run_dir={run}", *SMALL]
@@ -170,7 +198,6 @@ evaluate: {{splits: [test], list_sizes: [0]}}
 def test_sigterm_stops_parallel_training_workers_too(corpus, tmp_path):
     """SIGTERM sent to the command alone (as a job scheduler does) exits 143 with one line, and the
     training workers of a parallel recipe, which never see that signal, are stopped, not orphaned."""
-    import signal
     import time
 
     recipe = tmp_path / "r.yaml"
@@ -197,16 +224,7 @@ evaluate: {{splits: [test], list_sizes: [0]}}
 
     workers = children(proc.pid)
     assert workers, "the recipe should be training in worker processes"
-    proc.send_signal(signal.SIGTERM)
-    _, err = proc.communicate(timeout=120)
-    assert proc.returncode == 143, err
-    assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
-    deadline = time.time() + 30
-    while any(os.path.exists(f"/proc/{w}") and "Z" not in open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[:1]
-              for w in workers) and time.time() < deadline:
-        time.sleep(0.2)
-    assert not [w for w in workers if os.path.exists(f"/proc/{w}")
-                and open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"]
+    stop_with_sigterm(proc, workers)
 
 
 def test_sigterm_stops_a_benchmarks_training_workers(corpus, tmp_path):
@@ -219,26 +237,14 @@ def test_sigterm_stops_a_benchmarks_training_workers(corpus, tmp_path):
                              "--run-dir", str(tmp_path / "runs" / "trie"), "--minutes", "3"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     workers = []
-
-    def alive():
-        return [w for w in workers if os.path.exists(f"/proc/{w}")
-                and open(f"/proc/{w}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"]
-
     try:
         deadline = time.time() + 420  # the cue timing and the corpus come first; slow on a busy machine
         while not list((tmp_path / "runs").rglob("logs")) and time.time() < deadline:  # a worker trains
             time.sleep(0.1)
         workers = children(proc.pid)
         assert len(workers) >= 2, "the benchmark should be training in a worker process"
-        proc.send_signal(signal.SIGTERM)
-        _, err = proc.communicate(timeout=120)
-        assert proc.returncode == 143, err
-        assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
-        deadline = time.time() + 30
-        while alive() and time.time() < deadline:
-            time.sleep(0.2)
-        assert not alive()
+        stop_with_sigterm(proc, workers)
     finally:  # a failed check leaves nothing running
         proc.kill()
-        for w in alive():
+        for w in live(workers):
             os.kill(w, signal.SIGKILL)

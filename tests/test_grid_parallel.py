@@ -4,7 +4,6 @@ stops the workers."""
 
 import json
 import shutil
-import signal
 import subprocess
 import sys
 import time
@@ -12,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from test_cli import TINY, children  # the CLI tests' tiny corpus settings and /proc reader
+from test_cli import TINY, children, stop_with_sigterm  # the CLI tests' tiny corpus and /proc helpers
 from tinyrnnt.lab.grid import read_lines, run_grid
 from tinyrnnt.lab.recipes import read_recipe
 from tinyrnnt.synth.corpus import CorpusConfig, build_corpus
@@ -92,13 +91,6 @@ def test_parallel_cells_give_the_serial_lines_and_tune_once_per_model(corpus, tm
     assert (again["evaluated"], again["kept"], again["trained"]) == (0, 12, 0)
 
 
-def _alive(pid):
-    try:
-        return open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0] != "Z"
-    except OSError:
-        return False
-
-
 def test_sigterm_stops_the_grid_workers_and_a_restart_finishes_the_rest(corpus, tmp_path):
     path = _recipe(tmp_path, corpus, 2, name="stopped", splits="[test_unseen, test, valid]")
     lines_path = tmp_path / "runs" / "stopped" / "grid.jsonl"
@@ -111,14 +103,7 @@ def test_sigterm_stops_the_grid_workers_and_a_restart_finishes_the_rest(corpus, 
         time.sleep(0.02)
     workers = children(proc.pid)
     assert len(workers) >= 2, "the grid should be evaluating in worker processes"
-    proc.send_signal(signal.SIGTERM)
-    _, err = proc.communicate(timeout=120)
-    assert proc.returncode == 143, err
-    assert "Traceback" not in err and err.strip().splitlines()[-1].startswith("interrupted")
-    deadline = time.monotonic() + 30
-    while any(_alive(w) for w in workers) and time.monotonic() < deadline:
-        time.sleep(0.2)
-    assert not [w for w in workers if _alive(w)]
+    stop_with_sigterm(proc, workers)
     kept = read_lines(lines_path)
     assert 1 <= len(kept) < 36, "the grid finished before it could be stopped; the stop was not exercised"
     before = lines_path.read_bytes()
