@@ -50,6 +50,18 @@ def test_learned_key_knows_the_regular_spellings_of_english(english):
     assert "sh" in top["SH"] and {"ee", "ea"} <= set(top["IY"])
 
 
+def test_a_phone_seen_in_one_word_keeps_the_fallback_spellings_with_a_prior(english):
+    # Source: cmudict ("vision" V IH ZH AH N). Learned from English words with one ZH word only, the
+    # key ties ZH to that word's letter; the prior's pseudo-counts keep the usual spellings beside it.
+    train = [(w, p) for w, p in english[0] if "ZH" not in p] + [("vision", "V IH ZH AH N")]
+    alone = [s for s, _ in RespellingKey.learn(train).options("ZH", final=False)]
+    smoothed = [s for s, _ in RespellingKey.learn(train, prior=5.0).options("ZH", final=False)]
+    assert len(alone) == 1 and alone[0] in ("s", "si")  # EM's alignment of "vision": v-i-si-o-n
+    assert alone[0] in smoothed and {"j", "zh"} <= set(smoothed)
+    # a frequent phone is not moved by five pseudo-counts: CH stays "ch" first
+    assert RespellingKey.learn(train, prior=5.0).options("CH", final=False)[0][0] == "ch"
+
+
 def test_expected_counts_sum_to_one_per_phone_and_match_brute_force():
     # EM's E-step (Jiampojamarn et al., 2007): posteriors over all segmentations of the word into one
     # group of 1..3 letters per phone; checked against enumerating the segmentations by hand.

@@ -16,7 +16,11 @@ many-to-many alignment of Jiampojamarn, Kondrak & Sherif (NAACL 2007), here
 with one phone to one group. A word-final phone gets its own groups where the
 training words show enough of it ("penny": final IY as "y"). Phones the training
 words never show fall back to a small respelling key (common English spellings,
-as in dictionaries' pronunciation keys; written from memory).
+as in dictionaries' pronunciation keys; written from memory), and every phone's
+table also holds that key's spellings as PRIOR pseudo-counts (additive
+smoothing towards it), so a phone the training words show once or twice is not
+tied to their letters: the default corpus has ZH in one training word, and
+without the prior its names' ZH could only be written "sh".
 
 Spellings that are words of the recognizer's vocabulary are not added, so an
 entry never takes over a common word.
@@ -44,6 +48,7 @@ MAX_GROUP = 3  # letters one phone may be written with
 KEEP = 0.1  # a spelling of a phone is used when at least this share of that phone's best one
 MIN_FINAL = 20  # expected count a word-final phone needs to get groups of its own
 FINAL = "$"  # marks a word-final phone in the learned table
+PRIOR = 5.0  # pseudo-counts of the fallback key in every phone's learned table
 
 
 def check_phones(phones: str | Iterable[str]) -> list[str]:
@@ -74,8 +79,11 @@ class RespellingKey:
         return cls({p: [(s, 1.0 / (i + 1)) for i, s in enumerate(opts)] for p, opts in FALLBACK.items()})
 
     @classmethod
-    def learn(cls, pairs: Iterable[tuple[str, Iterable[str]]], iterations: int = 8) -> "RespellingKey":
+    def learn(cls, pairs: Iterable[tuple[str, Iterable[str]]], iterations: int = 8,
+              prior: float = 0.0) -> "RespellingKey":
         """Learn from (spelling, phones) pairs by EM over one-phone-to-1..3-letters alignments.
+        With `prior` > 0, each phone's table also holds the fallback key's spellings as that many
+        pseudo-counts, so a phone the words show only once or twice is not tied to one spelling.
 
         >>> words = [("see", "S IY"), ("bee", "B IY"), ("sea", "S IY"), ("sit", "S IH T"), ("bit", "B IH T"),
         ...          ("tee", "T IY"), ("tip", "T IH P"), ("pit", "P IH T"), ("bib", "B IH B")]
@@ -102,6 +110,11 @@ class RespellingKey:
             for p in counts:  # a merged word-final phone reads its phone's table
                 if p.endswith(FINAL) and p not in prob:
                     prob[p] = prob[p[:-1]]
+        if prior > 0:
+            for p, opts in FALLBACK.items():
+                norm = sum(1.0 / (i + 1) for i in range(len(opts)))
+                for i, spelling in enumerate(opts):
+                    counts[p][spelling] += prior / (i + 1) / norm
         table = {}
         for p, c in _merge_rare_finals(counts).items():
             best = max(c.values())
@@ -258,5 +271,5 @@ def corpus_key(split) -> RespellingKey:
                 pairs.append((word, phones_of[word]))
             elif dictionary.get(word):
                 pairs.append((word, strip_stress(dictionary[word][0])))
-        _KEYS[folder] = RespellingKey.learn(pairs)
+        _KEYS[folder] = RespellingKey.learn(pairs, prior=PRIOR)
     return _KEYS[folder]
