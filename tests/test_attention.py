@@ -162,6 +162,22 @@ def test_attention_equals_torch_scaled_dot_product_attention():
     assert torch.allclose(rows, ref[:, 0], atol=1e-5)
 
 
+def test_rows_packed_per_list_equal_torch_attention_row_by_row():
+    """Outside reference: torch.nn.functional.scaled_dot_product_attention, one decoding row at a
+    time over its own list's table; rows unevenly spread over the lists (one list has none)."""
+    att = _module("attention")
+    keys, values = torch.randn(4, 9, 64), torch.randn(4, 9, 64)
+    which = torch.tensor([2, 0, 2, 2, 3, 0, 2])  # list 1 has no row
+    q = torch.randn(len(which), 64)
+    mask = torch.rand(len(which), 9) > 0.4
+    mask[:, 0] = True
+    ours, w = att.attend_grouped(q, keys, values, which, mask)
+    for r, lst in enumerate(which.tolist()):
+        ref = torch.nn.functional.scaled_dot_product_attention(q[r, None], keys[lst], values[lst], attn_mask=mask[r, None])
+        assert torch.allclose(ours[r], ref[0], atol=1e-5)
+    assert torch.allclose(w.sum(-1), torch.ones(len(which))) and not w[~mask].any()
+
+
 @pytest.mark.parametrize("kind", KINDS)
 def test_beam_search_runs_and_wide_lists_change_nothing_when_the_context_is_off(kind):
     torch.manual_seed(4)
