@@ -107,7 +107,9 @@ def precision_runs(corpus: str, work: Path, steps: int) -> dict:
 
 def step_costs(corpus: str, batch_size: int = 16, repeats: int = 5, list_size: int = 100) -> dict:
     """Median training step (ms, 2 threads) of the plain model and each biasing input, on the same
-    batch of training-length utterances with lists of `list_size`; and each against the plain step."""
+    batch of training-length utterances with lists of `list_size`; and each against the plain step.
+    The kinds take turns, one step each per round, so a machine that speeds up or slows down
+    during the measurement moves all of them alike."""
     import torch
 
     from tinyrnnt import config as C
@@ -119,23 +121,25 @@ def step_costs(corpus: str, batch_size: int = 16, repeats: int = 5, list_size: i
     torch.set_num_threads(2)
     split = CorpusSplit(corpus, "test_unseen")
     batch = collate([{**split[i], "list": timing_list(split, i, list_size)} for i in range(batch_size)])
-    ms = {}
+    models = {}
     for kind, settings in {"none": [], **STEP_KINDS}.items():
         torch.manual_seed(0)
         cfg = C.apply_overrides(ExperimentConfig(), [f"data.corpus={corpus}", *settings])
         model = Transducer(cfg.model, cfg.bias if cfg.bias.kind != "none" else None)
         model.train()
-        optimiser = torch.optim.Adam(model.parameters(), lr=1e-5)
-        spent = []
-        for k in range(repeats + 1):  # the first is the warm-up
+        models[kind] = (model, torch.optim.Adam(model.parameters(), lr=1e-5))
+    spent: dict[str, list[float]] = {kind: [] for kind in models}
+    for k in range(repeats + 1):  # the first round is the warm-up
+        for kind, (model, optimiser) in models.items():
             t0 = time.perf_counter()
             optimiser.zero_grad()
             lists = batch["lists"] if model.bias is not None else None
             model.losses(batch["feats"], batch["feat_lens"], batch["targets"], batch["target_lens"], lists)["loss"].backward()
             optimiser.step()
             if k:
-                spent.append(time.perf_counter() - t0)
-        ms[kind] = round(1000 * statistics.median(spent), 1)
+                spent[kind].append(time.perf_counter() - t0)
+    ms = {kind: round(1000 * statistics.median(times), 1) for kind, times in spent.items()}
+    for kind in ms:
         _log(f"training step, {kind}: {ms[kind]} ms (batch of {batch_size}, N = {list_size}, 2 threads)")
     return {"train_step_ms": ms, "step_cost_ratios": {k: round(v / ms["none"], 3) for k, v in ms.items() if k != "none"}}
 
