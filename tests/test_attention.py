@@ -162,6 +162,24 @@ def test_attention_equals_torch_scaled_dot_product_attention():
     assert torch.allclose(rows, ref[:, 0], atol=1e-5)
 
 
+@pytest.mark.parametrize("width", [1, 3, 5])
+def test_phrase_convolution_by_lookups_equals_torch_conv1d(width):
+    """Outside reference: torch.nn.functional.conv1d over the token embeddings, zero-padded, with
+    the module's own weights; values and gradients."""
+    torch.manual_seed(width)
+    att = build_biasing(BiasConfig(kind="attention", options={"width": width}), 24, 16, PRED, ENC)
+    ids, _ = token_table(["kell", "a", "kelsoran", "mara"])
+    ours = att.token_convolution(ids)
+    ref = torch.nn.functional.conv1d(att.embed(ids).transpose(1, 2), att.conv.weight, att.conv.bias,
+                                     padding=width // 2).transpose(1, 2)
+    assert torch.allclose(ours, ref, atol=1e-5)
+    g = torch.randn_like(ref)
+    ours_grads = torch.autograd.grad((ours * g).sum(), [att.embed.weight, att.conv.weight, att.conv.bias])
+    ref_grads = torch.autograd.grad((ref * g).sum(), [att.embed.weight, att.conv.weight, att.conv.bias])
+    for a, b in zip(ours_grads, ref_grads):
+        assert torch.allclose(a, b, atol=1e-4)
+
+
 def test_rows_packed_per_list_equal_torch_attention_row_by_row():
     """Outside reference: torch.nn.functional.scaled_dot_product_attention, one decoding row at a
     time over its own list's table; rows unevenly spread over the lists (one list has none)."""
