@@ -163,6 +163,40 @@ def test_mixing_boost_keeps_blank_and_moves_mass_to_the_allowed_tokens():
     assert torch.allclose(mixed[1:, 1:], expected, atol=1e-6)
 
 
+def test_mixing_boost_gradient_passes_gradcheck():
+    """The mixing boost's hand-written backward pass against finite differences
+    (torch.autograd.gradcheck, double precision): a lattice whose cue is shared over frames as in
+    training, with dead cues and cues of one token; and a gate broadcast over tokens."""
+    from tinyrnnt.bias.trie_cue import mix_correction
+
+    torch.manual_seed(5)
+    logits = (torch.randn(2, 3, 4, 7, dtype=torch.double) * 2).requires_grad_()
+    cue = (torch.rand(2, 1, 4, 7) < 0.3).double()
+    cue[..., 0] = 0
+    cue[0, 0, 1] = 0  # dead
+    cue[1, 0, 2] = 0
+    cue[1, 0, 2, 3] = 1  # one allowed token
+    gate = torch.randn(2, 3, 4, dtype=torch.double, requires_grad=True)
+    assert torch.autograd.gradcheck(lambda a, g: mix_correction(a, cue, g), (logits, gate))
+    shared_gate = torch.randn(2, 1, 4, dtype=torch.double, requires_grad=True)  # broadcast over frames
+    assert torch.autograd.gradcheck(lambda a, g: mix_correction(a, cue, g), (logits, shared_gate))
+
+
+@pytest.mark.parametrize("mode", ["add", "mix"])
+def test_gate_read_with_the_output_layer_equals_the_gate_layer_alone(mode):
+    """The trie's gate is computed in one product with the joiner's output layer
+    (`hidden_readout`); the result equals applying the two layers one after the other."""
+    torch.manual_seed(6)
+    model = Transducer(SMALL, BiasConfig(kind="trie", token_boost=True, boost_mode=mode))
+    with torch.no_grad():
+        model.bias.to_logits.weight.normal_()
+    hidden = torch.randn(2, 3, 4, SMALL.joiner_dim)
+    cue = (torch.rand(2, 1, 4, VOCAB_SIZE) < 0.3).float()
+    plain = model.joiner.out(hidden)
+    expected = plain + model.bias.token_scores(hidden, cue, plain)
+    assert torch.allclose(model.token_logits(hidden, cue), expected, atol=1e-5)
+
+
 def test_respelling_changes_transcript_and_list_together_and_only_few_shot_words():
     # Outside reference for "invented": neither cmudict nor wordfreq knows the respelling.
     from tinyrnnt.synth.lexicon import is_invented

@@ -197,8 +197,16 @@ class BiasingInput(nn.Module):
 
     def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor) -> Tensor:
         """Scores (..., V) added to the joiner's plain `logits` (..., V), for modules whose features
-        hold "logits"; `hidden` is the joiner's tanh layer (..., Dj)."""
+        hold "logits"; `hidden` is the joiner's tanh layer (..., Dj). A module with a
+        `hidden_readout` layer also gets `readout=` its outputs (..., k)."""
         raise NotImplementedError
+
+    def hidden_readout(self) -> nn.Linear | None:
+        """A linear layer (Dj -> k) over the joiner's hidden layer that `token_scores` reads, or
+        None (the default). The model computes it in one product with the joiner's output layer
+        and passes the result as `token_scores(..., readout=)`: the hidden lattice (B, T', U+1, Dj)
+        is then read once, and its gradient written once, instead of once per layer."""
+        return None
 
 
 class Biaser:

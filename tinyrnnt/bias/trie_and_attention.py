@@ -36,8 +36,11 @@ class TrieAndAttention(BiasingInput):
     def after_encoder(self, features: dict, enc: Tensor, enc_lens: Tensor) -> dict:
         return self.attention.after_encoder(features, enc, enc_lens)
 
-    def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor) -> Tensor:
-        return self.trie.token_scores(hidden, feature, logits)
+    def hidden_readout(self):
+        return self.trie.hidden_readout()
+
+    def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor, readout: Tensor | None = None) -> Tensor:
+        return self.trie.token_scores(hidden, feature, logits, readout)
 
     def decoder(self, lists) -> "BothBiaser":
         return BothBiaser(self.trie.decoder(lists), self.attention.decoder(lists))

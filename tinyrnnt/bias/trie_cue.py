@@ -73,10 +73,14 @@ class TrieCue(BiasingInput):
             out["logits"] = cue  # (..., V)
         return out
 
-    def token_scores(self, hidden: Tensor, cue: Tensor, logits: Tensor) -> Tensor:
+    def hidden_readout(self) -> nn.Linear | None:
+        return self.to_logits  # the gate, computed with the joiner's output layer
+
+    def token_scores(self, hidden: Tensor, cue: Tensor, logits: Tensor, readout: Tensor | None = None) -> Tensor:
+        gate = self.to_logits(hidden) if readout is None else readout  # (..., 1)
         if self.cfg.boost_mode == "add":
-            return self.to_logits(hidden) * cue  # (..., 1) * (..., V)
-        return self.to_mix_scale * mix_correction(logits, cue, self.to_logits(hidden)[..., 0])
+            return gate * cue  # (..., 1) * (..., V)
+        return self.to_mix_scale * mix_correction(logits, cue, gate[..., 0])
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         trees = BatchedTrees([self.tree(words) for words in lists])
@@ -109,14 +113,45 @@ def mix_correction(logits: Tensor, cue: Tensor, gate: Tensor) -> Tensor:
     >>> [round(x, 3) for x in p.tolist()]  # blank kept; half the rest goes to the allowed token
     [0.107, 0.393, 0.053, 0.447]
     """
-    z = logits[..., 1:]  # (..., V-1), blank is token 0
-    allowed = cue[..., 1:]  # (..., V-1), 1.0 where the tree allows the token
-    count = allowed.sum(-1, keepdim=True)  # (..., 1)
-    lse = torch.logsumexp(z, dim=-1, keepdim=True)  # (..., 1)
-    g = gate[..., None]  # (..., 1)
-    corr = nn.functional.logsigmoid(-g) + allowed * nn.functional.softplus(g + lse - torch.log(count.clamp(min=1)) - z)
-    corr = corr * (count > 0)  # a dead cue changes nothing
-    return nn.functional.pad(corr, (1, 0))  # (..., V), blank's correction 0
+    return _MixCorrection.apply(logits, cue, gate)
+
+
+class _MixCorrection(torch.autograd.Function):
+    """mix_correction with its gradient written out, in fewer passes over the lattice than
+    autograd's chain of elementwise steps (the lattice is (B, T', U+1, V): every pass counts).
+
+    With a the allowed tokens (cue, zero where the cue is dead), s = g + lse - log c - z,
+    corr_v = log sigmoid(-g) + a_v softplus(s_v) and G the incoming gradient:
+    d corr_v / d z_j = a_v sigmoid(s_v) (q_j - [v = j]), q = softmax(z), so with
+    r_v = G_v a_v sigmoid(s_v) and S = sum_v r_v: grad z_j = q_j S - r_j;
+    grad g = S - sigmoid(g) sum_v G_v (over live cues). Checked against autograd by
+    torch.autograd.gradcheck in tests/test_bias.py.
+    """
+
+    @staticmethod
+    def forward(ctx, logits: Tensor, cue: Tensor, gate: Tensor) -> Tensor:
+        z = logits[..., 1:]  # (..., V-1), blank is token 0
+        allowed = cue[..., 1:]  # (..., V-1), 1.0 where the tree allows the token
+        count = allowed.sum(-1, keepdim=True)  # (..., 1)
+        live = (count > 0).to(logits.dtype)  # a dead cue changes nothing
+        g = gate[..., None]  # (..., 1)
+        lse = torch.logsumexp(z, dim=-1, keepdim=True)  # (..., 1)
+        s = (g + lse - torch.log(count.clamp(min=1))) - z  # (..., V-1)
+        spread = allowed * live  # (..., V-1), small: the cue is shared over frames
+        corr = torch.addcmul(nn.functional.logsigmoid(-g) * live, spread, nn.functional.softplus(s))
+        ctx.save_for_backward(z, lse, g, live, spread, torch.sigmoid(s))
+        ctx.gate_shape = gate.shape
+        return nn.functional.pad(corr, (1, 0))  # (..., V), blank's correction 0
+
+    @staticmethod
+    def backward(ctx, grad: Tensor):
+        z, lse, g, live, spread, sig = ctx.saved_tensors
+        grad_z = grad[..., 1:]
+        r = (grad_z * sig).mul_(spread)  # (..., V-1)
+        total = r.sum(-1, keepdim=True)  # S
+        grad_logits = nn.functional.pad(torch.sub(z, lse).exp_().mul_(total).sub_(r), (1, 0))  # q S - r
+        grad_gate = (total - torch.sigmoid(g) * live * grad_z.sum(-1, keepdim=True))[..., 0]
+        return grad_logits, None, grad_gate.sum_to_size(ctx.gate_shape)  # a broadcast gate sums its share
 
 
 class TrieBiaser(Biaser):

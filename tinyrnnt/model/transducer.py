@@ -276,8 +276,15 @@ class Transducer(nn.Module):
     def token_logits(self, hidden: Tensor, token_feature: Tensor | None = None) -> Tensor:
         """Joiner hidden layer (..., Dj) -> logits (..., V), plus the biasing input's token scores
         when it gives a "logits" feature; training and decoding both come through here."""
-        logits = self.joiner.out(hidden)
-        return logits if token_feature is None else logits + self.bias.token_scores(hidden, token_feature, logits)
+        out = self.joiner.out
+        readout = self.bias.hidden_readout() if token_feature is not None else None
+        if readout is None:
+            logits = out(hidden)
+            return logits if token_feature is None else logits + self.bias.token_scores(hidden, token_feature, logits)
+        both = nn.functional.linear(hidden, torch.cat([out.weight, readout.weight]),
+                                    torch.cat([out.bias, readout.bias]))  # (..., V + k): one pass over hidden
+        logits = both[..., :VOCAB_SIZE]
+        return logits + self.bias.token_scores(hidden, token_feature, logits, readout=both[..., VOCAB_SIZE:])
 
     def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
         """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""
