@@ -31,6 +31,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+import numpy as np
 import torch
 from torch import Tensor, nn
 
@@ -41,6 +42,8 @@ ENCODERS = ("conv", "lstm")
 GATES = ("all", "prefix", "started")
 QUERIES = ("predictor", "encoder")
 MASK_KEY, ROW_KEY = "attention_mask", "attention_rows"  # the module's own feature entries
+ROW_CACHE = 200_000  # words whose token ids token_table keeps
+_ROWS: dict[str, np.ndarray] = {}
 
 
 @dataclass
@@ -84,18 +87,22 @@ def token_table(words: list[str]) -> tuple[Tensor, Tensor]:
     >>> ids.tolist(), n.tolist()
     ([[3, 4], [5, 0]], [2, 1])
     """
-    import numpy as np
 
     rows = []
     for w in words:
-        if not w.strip():
-            raise ValueError("biasing list: an empty entry; expected letters")
-        rows.append(encode(w, where=f"biasing list entry {w!r}"))
+        row = _ROWS.get(w)
+        if row is None:  # checked and encoded once per word: training lists repeat the inventory's words
+            if not w.strip():
+                raise ValueError("biasing list: an empty entry; expected letters")
+            if len(_ROWS) >= ROW_CACHE:
+                _ROWS.clear()
+            row = _ROWS[w] = np.array(encode(w, where=f"biasing list entry {w!r}"), dtype=np.int64)
+        rows.append(row)
     lengths = np.array([len(r) for r in rows], dtype=np.int64)
     L = int(lengths.max()) if len(rows) else 1
     # one flat array, scattered into place: a Python loop of small tensor writes cost more than
     # the phrase encoder itself at N = 5000
-    flat = np.fromiter((t for r in rows for t in r), dtype=np.int64, count=int(lengths.sum()))
+    flat = np.concatenate(rows) if rows else np.zeros(0, dtype=np.int64)
     ids = np.full((len(rows), L), BLANK, dtype=np.int64)
     ids[np.arange(L)[None, :] < lengths[:, None]] = flat
     return torch.from_numpy(ids), torch.from_numpy(lengths)
@@ -200,8 +207,8 @@ class ListAttention(BiasingInput):
         L = ids.shape[1]
         # the lookups as one product with one-hot rows: a gather's backward pass scatters into V
         # rows from every position and was slower than the convolution it replaces
-        hot = nn.functional.one_hot(padded, VOCAB_SIZE).to(table.dtype)  # (W, L + width - 1, V)
-        windows = torch.cat([hot[:, k:k + L] for k in range(width)], dim=-1)  # (W, L, width V)
+        at = torch.stack([padded[:, k:k + L] + k * VOCAB_SIZE for k in range(width)], dim=-1)  # (W, L, width)
+        windows = table.new_zeros(ids.shape[0], L, width * VOCAB_SIZE).scatter_(-1, at, 1.0)  # one-hot per offset
         return windows @ table.reshape(width * VOCAB_SIZE, -1) + self.conv.bias  # (W, L, Da)
 
     def entries(self, mem: Memory) -> tuple[Tensor, Tensor]:
