@@ -325,3 +325,21 @@ def test_quickstart_benchmark_parts_on_a_tiny_corpus(corpus, tmp_path):
     costs = step_costs(str(corpus), batch_size=2, repeats=1, list_size=10)
     assert set(costs["step_cost_ratios"]) == {"trie", "attention", "trie+attention"}
     assert all(v > 0 for v in costs["train_step_ms"].values())
+
+
+def test_quiet_training_prints_no_accelerator_banner(corpus, tmp_path, capfd):
+    # A benchmark's quiet training printed Lightning's "GPU available: False, used: False" and
+    # "TPU available" lines at every arm; quiet now means quiet.
+    from tinyrnnt import config as C
+    from tinyrnnt.experiment import ExperimentConfig
+    from tinyrnnt.lab.train import train
+
+    cfg = C.apply_overrides(ExperimentConfig(), [
+        f"data.corpus={corpus}", "data.batch_size=8", "data.valid_subset=8", f"run_dir={tmp_path / 'quiet'}",
+        "model={encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}",
+        "train.steps=2", "train.minutes=0", "train.validate_every_steps=2", "train.threads=1",
+        "train.snapshot_minutes=0"])
+    train(cfg, quiet=True)
+    out, err = capfd.readouterr()
+    assert "GPU available" not in out + err and "TPU available" not in out + err
+    assert "log_every_n_steps" not in out + err

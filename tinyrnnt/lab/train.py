@@ -19,14 +19,22 @@ from tinyrnnt.model.transducer import Transducer
 
 class _NoAdverts(logging.Filter):
     """Drops Lightning's start-up tips about third-party services (printed at every training start)
-    and its Ctrl-C notice (the command prints its own one line)."""
+    and its Ctrl-C notice (the command prints its own one line); while `quiet`, also its
+    accelerator lines ("GPU available: False, used: False"), which a benchmark's quiet training
+    printed at every arm."""
+
+    quiet = False
+    BANNERS = ("GPU available", "TPU available", "HPU available", "IPU available")
 
     def filter(self, record: logging.LogRecord) -> bool:
         message = record.getMessage()
+        if self.quiet and message.startswith(self.BANNERS):
+            return False
         return "Tip:" not in message and "Detected KeyboardInterrupt" not in message
 
 
-logging.getLogger("lightning.pytorch.utilities.rank_zero").addFilter(_NoAdverts())
+_ADVERTS = _NoAdverts()
+logging.getLogger("lightning.pytorch.utilities.rank_zero").addFilter(_ADVERTS)
 
 
 class CheckpointError(ValueError):
@@ -122,6 +130,7 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False, call
         trainer_args["precision"] = "bf16-mixed"
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
     task.precision_used = str(cfg.train.trainer.get("precision", precision))
+    _ADVERTS.quiet = quiet
     try:
         trainer = L.Trainer(**trainer_args)
     except TypeError as err:
@@ -154,6 +163,8 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False, call
             warnings.filterwarnings("ignore", message=".*LeafSpec.*")  # Lightning-internal deprecation
             # ExactResume (lab/resume.py) continues a half-done epoch exactly; Lightning cannot see that
             warnings.filterwarnings("ignore", message=".*dataloader is not resumable.*")
+            # short runs have fewer batches than the CSV logger's interval; the loss is logged anyway
+            warnings.filterwarnings("ignore", message=".*log_every_n_steps.*")
             try:
                 trainer.fit(task, train_dl, valid_dl, ckpt_path=resume_from)
             except SystemExit:
