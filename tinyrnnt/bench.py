@@ -105,17 +105,46 @@ def bench_corpus(args) -> dict:
     }
 
 
-def sgemm_gflops(threads: int, n: int = 2048, repeats: int = 10) -> float:
+def sgemm_gflops(threads: int, n: int = 2048, blocks: int = 5, m: int | None = None, k: int | None = None) -> float:
+    """Steady single-precision matrix-multiply rate, GFLOP/s: (m x k) @ (k x n), m and k = n unless
+    given; the best of `blocks` timed blocks (each at least 0.1 s) after a warm-up, so one slow
+    block (another process, a frequency step) does not set the peak."""
     import torch
 
     torch.set_num_threads(threads)
-    a, b = torch.randn(n, n), torch.randn(n, n)
-    for _ in range(2):
+    m, k = m or n, k or n
+    a, b = torch.randn(m, k), torch.randn(k, n)
+    flops = 2 * m * k * n
+    t0, repeats = time.perf_counter(), 0
+    while time.perf_counter() - t0 < 0.05 or repeats < 2:  # warm-up, and how many make 0.1 s
         a @ b
-    t0 = time.perf_counter()
-    for _ in range(repeats):
-        a @ b
-    return 2 * n ** 3 * repeats / (time.perf_counter() - t0) / 1e9
+        repeats += 1
+    repeats = max(1, int(repeats * 0.1 / max(time.perf_counter() - t0, 1e-9)))
+    best = 0.0
+    for _ in range(blocks):
+        t0 = time.perf_counter()
+        for _ in range(repeats):
+            a @ b
+        best = max(best, flops * repeats / (time.perf_counter() - t0) / 1e9)
+    return best
+
+
+def model_shape_gflops(cfg, threads: int, batch: int = 16, frames: int = 200, labels: int = 40) -> dict:
+    """The steady rate (sgemm_gflops) at the matrix products the default model really runs on a
+    batch of `batch` utterances of `frames` frames and `labels` tokens: the first encoder layer's
+    input projection, one recurrent step of an encoder layer, the predictor's recurrent step, and
+    the joiner's output layer over the lattice."""
+    from tinyrnnt.text import VOCAB_SIZE
+
+    t1 = frames // cfg.stack_frames
+    t2 = t1 // cfg.stack_after_first
+    shapes = {
+        "encoder_input": (batch * t1, cfg.feature_bins * cfg.stack_frames, 4 * cfg.encoder_dim),
+        "encoder_step": (batch, cfg.encoder_dim, 4 * cfg.encoder_dim),
+        "predictor_step": (batch, cfg.predictor_dim, 4 * cfg.predictor_dim),
+        "joiner_output": (batch * t2 * (labels + 1), cfg.joiner_dim, VOCAB_SIZE),
+    }
+    return {name: round(sgemm_gflops(threads, n=n, m=m, k=k), 1) for name, (m, k, n) in shapes.items()}
 
 
 def bench_train(args) -> dict:

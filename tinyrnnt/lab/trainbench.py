@@ -35,7 +35,7 @@ def cer_curve(cfg: ExperimentConfig, snapshots, split: CorpusSplit) -> list[dict
 
 
 def run_train_bench(args) -> dict:
-    from tinyrnnt.bench import sgemm_gflops
+    from tinyrnnt.bench import model_shape_gflops, sgemm_gflops
     from tinyrnnt.lab.recipes import ensure_corpus
     from tinyrnnt.lab.train import load_model, train
     from tinyrnnt.model.loss import time_losses
@@ -44,6 +44,8 @@ def run_train_bench(args) -> dict:
     cfg = C.apply_overrides(ExperimentConfig(), [f"run_dir={run_dir}", f"data.corpus={args.corpus}",
                                                  f"train.minutes={args.minutes}", "train.threads=2"])
     sgemm = sgemm_gflops(threads=2)
+    at_shapes = model_shape_gflops(cfg.model, threads=2, batch=cfg.data.batch_size)
+    _log(f"steady sgemm peak at 2048^2: {sgemm:.1f} GFLOP/s; at the model's shapes: {at_shapes}")
     losses = time_losses()
     _log(f"sgemm {sgemm:.1f} GFLOP/s (2 threads); loss ms ours {losses['loss_ms_ours']:.1f}, "
          f"torchaudio {losses['loss_ms_torchaudio']:.1f}")
@@ -92,6 +94,7 @@ def run_train_bench(args) -> dict:
         "train_gflops": facts["train_gflops"],
         "sgemm_gflops": round(sgemm, 1),
         "flop_utilisation": round(facts["train_gflops"] / sgemm, 3),
+        "model_shape_gflops": at_shapes,  # the same steady peak at the products the model runs
         "loss_ms_ours": round(losses["loss_ms_ours"], 2),
         "loss_ms_torchaudio": round(losses["loss_ms_torchaudio"], 2),
         "loss_max_abs_diff": losses.get("max_abs_diff"),
