@@ -139,8 +139,9 @@ class _MixCorrection(torch.autograd.Function):
         s = (g + lse - torch.log(count.clamp(min=1))) - z  # (..., V-1)
         spread = allowed * live  # (..., V-1), small: the cue is shared over frames
         corr = torch.addcmul(nn.functional.logsigmoid(-g) * live, spread, nn.functional.softplus(s))
-        ctx.save_for_backward(z, lse, g, live, spread, torch.sigmoid(s))
-        ctx.gate_shape = gate.shape
+        if any(ctx.needs_input_grad):  # decoding needs no backward pass: skip its sigmoid over the lattice
+            ctx.save_for_backward(z, lse, g, live, spread, torch.sigmoid(s))
+            ctx.gate_shape = gate.shape
         return nn.functional.pad(corr, (1, 0))  # (..., V), blank's correction 0
 
     @staticmethod

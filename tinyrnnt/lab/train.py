@@ -130,11 +130,13 @@ def train(cfg: ExperimentConfig, quiet: bool = False, resume: bool = False, call
         trainer_args["precision"] = "bf16-mixed"
     trainer_args.update(cfg.train.trainer)  # recipe's Trainer settings win (accelerator, devices, precision...)
     task.precision_used = str(cfg.train.trainer.get("precision", precision))
-    _ADVERTS.quiet = quiet
+    _ADVERTS.quiet = quiet  # the accelerator lines are printed while the Trainer is built
     try:
         trainer = L.Trainer(**trainer_args)
     except TypeError as err:
         raise C.ConfigError(f"train.trainer: {err} (these settings go to lightning.Trainer unchanged)") from None
+    finally:
+        _ADVERTS.quiet = False
 
     # Checks passed: only now touch the run folder.
     new_folder = not run.exists()

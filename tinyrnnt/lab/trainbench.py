@@ -45,10 +45,9 @@ def run_train_bench(args) -> dict:
                                                  f"train.minutes={args.minutes}", "train.threads=2"])
     sgemm = sgemm_gflops(threads=2)
     at_shapes = model_shape_gflops(cfg.model, threads=2, batch=cfg.data.batch_size)
-    _log(f"steady sgemm peak at 2048^2: {sgemm:.1f} GFLOP/s; at the model's shapes: {at_shapes}")
     losses = time_losses()
-    _log(f"sgemm {sgemm:.1f} GFLOP/s (2 threads); loss ms ours {losses['loss_ms_ours']:.1f}, "
-         f"torchaudio {losses['loss_ms_torchaudio']:.1f}")
+    _log(f"steady sgemm peak (2 threads) at 2048^2: {sgemm:.1f} GFLOP/s; at the model's shapes: {at_shapes}; "
+         f"loss ms ours {losses['loss_ms_ours']:.1f}, torchaudio {losses['loss_ms_torchaudio']:.1f}")
     ensure_corpus(cfg, build=True)
     facts_path = run_dir / "bench.json"
     if args.fresh or not facts_path.is_file():
