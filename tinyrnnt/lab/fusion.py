@@ -18,7 +18,9 @@ from pathlib import Path
 from tinyrnnt.lab.evaluate import evaluate, write_atomic
 
 OBJECTIVES = ("wer", "bwer", "uwer")
-DEFAULT_WEIGHTS = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
+# Finer below 0.5: a model that already follows its list (the trie cue) is over-boosted by 0.5
+# (trie arm of record, valid, N = 100, beam 4: WER 0.083 at 0, 0.080 at 0.2, 0.091 at 0.5).
+DEFAULT_WEIGHTS = (0.0, 0.1, 0.2, 0.3, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
 
 
 def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid", list_size: int = 100,

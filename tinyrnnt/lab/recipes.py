@@ -33,6 +33,7 @@ from tinyrnnt import config as C
 from tinyrnnt.experiment import ExperimentConfig
 from tinyrnnt.lab.armtraining import _saved_settings_match, _train_one, _training_part, train_arms  # noqa: F401
 from tinyrnnt.lab.costrecipe import CostPlan
+from tinyrnnt.lab.fusion import DEFAULT_WEIGHTS
 from tinyrnnt.lab.preflight import check_plan, check_room, ensure_corpus  # noqa: F401
 from tinyrnnt.resources import resolve_recipe
 
@@ -98,7 +99,7 @@ class TunePlan:
 
     split: str = "valid"
     list_size: int = 100
-    weights: tuple[float, ...] = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
+    weights: tuple[float, ...] = DEFAULT_WEIGHTS
     objective: str = "wer"  # lowest wer | bwer | uwer on the tuning split
 
     def __post_init__(self):
