@@ -232,7 +232,9 @@ def test_characters_outside_the_inventory_are_refused_where_lists_are_read(entry
     ({"encoder": "transformer"}, "encoder must be one of"),
     ({"width": 4}, "width must be odd"),
     ({"dim": 0}, "dim must be above 0"),
-    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, phrase_gate, query, width"),
+    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, guide, phrase_gate, query, width"),
+    ({"guide": -1}, "guide cannot be negative"),
+    ({"query": "encoder", "guide": 1.0}, "guide needs query: predictor"),
     ({"query": "encoder", "phrase_gate": "prefix"}, "needs the label history"),
     ({"query": "joiner"}, "query must be one of"),
 ])
@@ -375,3 +377,48 @@ def test_encoder_query_batch_of_one_equals_batched_decoding(kind):
         alone = beam_search(model, one, n, [lists[b]], beam=3)[0]
         assert [t for t, _ in alone] == [t for t, _ in beams[b]]
         assert [s for _, s in alone] == pytest.approx([s for _, s in beams[b]], rel=1e-3)
+
+
+def test_guide_targets_point_inside_listed_words_only():
+    """Worked by hand: "call kelso a kell" with "kelso" and "kell" listed; positions predicting a
+    listed word's later tokens point at it, its first token is skipped, the rest is no-bias."""
+    from tinyrnnt.bias.guide import IGNORE, guide_targets
+
+    targets, lens = _targets(["call kelso a kell", "kel a"])
+    got = guide_targets([["kell", "kelso"], ["a b"]], targets, lens)
+    I = IGNORE
+    assert got[0].tolist() == [0, 0, 0, 0, 0, I, 2, 2, 2, 2, 0, 0, 0, I, 1, 1, 1, I]
+    assert got[1].tolist() == [0] * 5 + [I] * 13  # "a b" is no word sequence of "kel a"
+
+
+def test_guided_attention_loss_is_the_mean_negative_log_weight_and_trains_the_attention():
+    """The loss by hand (mean of -log w at the targets, as cross-entropy is defined); with it the
+    attention's query and key layers get a gradient from the loss alone, and a few optimiser steps
+    on it move the weight onto the spoken entry."""
+    from tinyrnnt.bias.guide import IGNORE, guide_loss, guide_targets
+
+    w = torch.softmax(torch.randn(2, 3, 4), -1)
+    t = torch.tensor([[0, 3, IGNORE], [1, IGNORE, 2]])
+    by_hand = -(w[0, 0, 0].log() + w[0, 1, 3].log() + w[1, 0, 1].log() + w[1, 2, 2].log()) / 4
+    assert torch.allclose(guide_loss(w, t), by_hand)
+
+    torch.manual_seed(0)
+    model = Transducer(SMALL, BiasConfig(kind="attention", options={"guide": 1.0})).train()
+    targets, lens = _targets(["call kelso a kell"])
+    lists = [["kelso", "maren", "kell", "barra"]]
+    feats = torch.randn(1, 60, SMALL.feature_bins)
+    before = model.losses(feats, torch.tensor([60]), targets, lens, lists)
+    assert {"rnnt", "bias", "loss"} <= set(before)
+    assert torch.allclose(before["loss"], before["rnnt"] + before["bias"])
+    before["bias"].backward()
+    att = model.bias
+    assert att.query.weight.grad.abs().sum() > 0 and att.key.weight.grad.abs().sum() > 0
+    opt = torch.optim.Adam(att.parameters(), lr=0.01)
+    for _ in range(30):
+        opt.zero_grad()
+        model.losses(feats, torch.tensor([60]), targets, lens, lists)["bias"].backward()
+        opt.step()
+    after = model.losses(feats, torch.tensor([60]), targets, lens, lists)["bias"]
+    assert after < 0.5 * before["bias"].detach()
+    model.eval()  # not in evaluation: no targets, no loss
+    assert "bias" not in model.losses(feats, torch.tensor([60]), targets, lens, lists)

@@ -36,12 +36,13 @@ import torch
 from torch import Tensor, nn
 
 from tinyrnnt.bias.base import Biaser, BiasingInput, register
+from tinyrnnt.bias.guide import guide_loss, guide_targets
 from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE, encode
 
 ENCODERS = ("conv", "lstm")
 GATES = ("all", "prefix", "started")
 QUERIES = ("predictor", "encoder")
-MASK_KEY, ROW_KEY = "attention_mask", "attention_rows"  # the module's own feature entries
+MASK_KEY, ROW_KEY, GUIDE_KEY = "attention_mask", "attention_rows", "attention_guide"  # the module's own entries
 ROW_CACHE = 200_000  # words whose token ids token_table keeps
 _ROWS: dict[str, np.ndarray] = {}
 
@@ -56,11 +57,14 @@ class AttentionSettings:
     width: int = 3  # convolution width in tokens (odd)
     phrase_gate: str = "all"  # which entries may be attended to: all | prefix | started (module docstring)
     query: str = "predictor"  # whose state asks: the predictor's (per label position) or the encoder's (per frame)
+    # Weight of the guided attention loss in training (tinyrnnt.bias.guide): the attention is told
+    # which entry the transcript is spelling at each label position; 0 = none. Needs query: predictor.
+    guide: float = 0.0
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
 
-        require(self, "bias.options", positive=("dim", "embed", "width"))
+        require(self, "bias.options", positive=("dim", "embed", "width"), at_least_zero=("guide",))
         for name, value, choices in (("encoder", self.encoder, ENCODERS), ("phrase_gate", self.phrase_gate, GATES),
                                      ("query", self.query, QUERIES)):
             if value not in choices:
@@ -70,6 +74,9 @@ class AttentionSettings:
         if self.query == "encoder" and self.phrase_gate != "all":
             raise ConfigError(f"bias.options.phrase_gate {self.phrase_gate!r} needs the label history, so "
                               "query: predictor; with query: encoder it must be 'all'")
+        if self.query == "encoder" and self.guide > 0:
+            raise ConfigError("bias.options.guide needs query: predictor (its targets are label positions); "
+                              f"got query: encoder with guide {self.guide}")
         if self.encoder == "lstm" and self.dim % 2:
             raise ConfigError(f"bias.options.dim must be even with the lstm encoder (two directions), got {self.dim}")
 
@@ -278,13 +285,18 @@ class ListAttention(BiasingInput):
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         mem = Memory(lists)
         keys, values = self.entries(mem)  # (lists, N+1, Da)
-        return {MASK_KEY: self.gate_masks(mem, targets), ROW_KEY: (keys[mem.which], values[mem.which])}
+        out = {MASK_KEY: self.gate_masks(mem, targets), ROW_KEY: (keys[mem.which], values[mem.which])}
+        if self.training and self.opts.guide > 0:
+            out[GUIDE_KEY] = guide_targets(lists, targets, target_lens)  # (B, U+1)
+        return out
 
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
         if self.opts.query != "predictor":
             return features
-        context, _ = self.attend_rows(self.query(pred), features[ROW_KEY], features[MASK_KEY])  # (..., Da)
+        context, w = self.attend_rows(self.query(pred), features[ROW_KEY], features[MASK_KEY])  # (..., Da)
         out = dict(features)
+        if GUIDE_KEY in features:  # training only: the guided attention loss
+            out["loss"] = self.opts.guide * guide_loss(w, features[GUIDE_KEY])
         j = self.to_joiner(context)  # (..., Dj)
         out["joiner"] = j if features.get("joiner") is None else features["joiner"] + j
         return out

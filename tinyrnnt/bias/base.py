@@ -35,6 +35,10 @@ Likewise `after_encoder(features, enc, enc_lens)` (training) may add
 encoder side (attention with the encoder state as its query); while decoding,
 `Biaser.frames(enc)` gives it per row, (rows, T', Dj), or None.
 
+A module may also return {"loss": scalar} from either hook while training: a
+loss of its own (guided attention's, tinyrnnt.bias.guide) that the model adds
+to the transducer loss.
+
 A module's own settings live in `bias.options` (a mapping the module checks
 itself, e.g. through its own dataclass and `config.from_dict`), so a new idea
 takes one file and no field here. Built-in modules are imported by name

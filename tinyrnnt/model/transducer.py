@@ -253,7 +253,7 @@ class Transducer(nn.Module):
         features enter at the configured injection point; `label_bias` adds a
         ready-made joiner feature (B, U+1, Dj) directly.
         """
-        logits, enc_lens, _ = self._run(feats, feat_lens, targets, target_lens, lists, label_bias, False)
+        logits, enc_lens, _, _ = self._run(feats, feat_lens, targets, target_lens, lists, label_bias, False)
         return logits, enc_lens
 
     def _run(self, feats, feat_lens, targets, target_lens, lists, label_bias, keep_first: bool):
@@ -271,7 +271,8 @@ class Transducer(nn.Module):
             joiner_bias = label_bias if joiner_bias is None else joiner_bias + label_bias
         hidden = self.joiner.hidden(enc, pred, joiner_bias, extra.get("encoder"))  # (B, T', U+1, Dj)
         token_feature = extra["logits"][:, None] if "logits" in extra else None  # (B, 1, U+1, V)
-        return self.token_logits(hidden, token_feature), enc_lens, first  # (B, T', U+1, V)
+        # a biasing input's own training loss (e.g. guided attention), added to the objective
+        return self.token_logits(hidden, token_feature), enc_lens, first, extra.get("loss")  # (B, T', U+1, V)
 
     def token_logits(self, hidden: Tensor, token_feature: Tensor | None = None) -> Tensor:
         """Joiner hidden layer (..., Dj) -> logits (..., V), plus the biasing input's token scores
@@ -291,7 +292,7 @@ class Transducer(nn.Module):
         from tinyrnnt.model.loss import transducer_loss
 
         keep = self.ctc_head is not None
-        logits, enc_lens, first = self._run(feats, feat_lens, targets, target_lens, lists, None, keep)
+        logits, enc_lens, first, bias_loss = self._run(feats, feat_lens, targets, target_lens, lists, None, keep)
         with torch.autocast(logits.device.type, enabled=False):  # under bf16 autocast the loss stays float32
             out = {"rnnt": transducer_loss(logits.float(), targets, enc_lens, target_lens,
                                            implementation=implementation)}
@@ -300,6 +301,9 @@ class Transducer(nn.Module):
             with torch.autocast(first[0].device.type, enabled=False):
                 out["ctc"] = self.ctc_loss(first[0].float(), first[1], targets, target_lens)
             out["loss"] = out["rnnt"] + self.cfg.ctc_weight * out["ctc"]
+        if bias_loss is not None:
+            out["bias"] = bias_loss.float()
+            out["loss"] = out["loss"] + out["bias"]
         return out
 
     def ctc_loss(self, first: Tensor, first_lens: Tensor, targets: Tensor, target_lens: Tensor) -> Tensor:
