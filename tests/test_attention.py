@@ -38,9 +38,9 @@ def _targets(texts):
 ENC = 40  # encoder output size of the modules built here
 
 
-def _module(kind, gate="all", encoder="conv", seed=0, query="predictor"):
+def _module(kind, gate="all", encoder="conv", seed=0, query="predictor", values="phrase"):
     torch.manual_seed(seed)
-    options = {"phrase_gate": gate, "encoder": encoder, "query": query}
+    options = {"phrase_gate": gate, "encoder": encoder, "query": query, "values": values}
     return build_biasing(BiasConfig(kind=kind, options=options), 24, 16, PRED, ENC).eval()
 
 
@@ -65,10 +65,10 @@ def test_empty_list_gives_the_no_bias_context(kind, gate):
 
 
 @pytest.mark.parametrize("kind", KINDS)
-@pytest.mark.parametrize("gate", GATES)
+@pytest.mark.parametrize("gate,values", [(g, "phrase") for g in GATES] + [(g, "next_token") for g in GATES[1:]])
 @pytest.mark.parametrize("case", sorted(EDGE_LISTS))
-def test_decode_time_features_equal_training_features(kind, gate, case):
-    module = _module(kind, gate, seed=1)
+def test_decode_time_features_equal_training_features(kind, gate, values, case):
+    module = _module(kind, gate, seed=1, values=values)
     lists = [EDGE_LISTS[case], ["kell", "maren"], EDGE_LISTS[case]]
     targets, lens = _targets(TEXTS)
     pred = torch.randn(3, targets.shape[1] + 1, PRED)
@@ -232,9 +232,11 @@ def test_characters_outside_the_inventory_are_refused_where_lists_are_read(entry
     ({"encoder": "transformer"}, "encoder must be one of"),
     ({"width": 4}, "width must be odd"),
     ({"dim": 0}, "dim must be above 0"),
-    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, guide, phrase_gate, query, width"),
+    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, guide, phrase_gate, query, values, width"),
     ({"guide": -1}, "guide cannot be negative"),
     ({"query": "encoder", "guide": 1.0}, "guide needs query: predictor"),
+    ({"values": "next_token"}, "needs phrase_gate 'prefix' or 'started'"),
+    ({"values": "letters"}, "values must be one of"),
     ({"query": "encoder", "phrase_gate": "prefix"}, "needs the label history"),
     ({"query": "joiner"}, "query must be one of"),
 ])
@@ -422,3 +424,29 @@ def test_guided_attention_loss_is_the_mean_negative_log_weight_and_trains_the_at
     assert after < 0.5 * before["bias"].detach()
     model.eval()  # not in evaluation: no targets, no loss
     assert "bias" not in model.losses(feats, torch.tensor([60]), targets, lens, lists)
+
+
+@pytest.mark.parametrize("gate", ["prefix", "started"])
+@pytest.mark.parametrize("text", ["call kel", "kelso a kell", "a kelx kel", "kell"])
+def test_next_token_values_are_the_letter_each_open_entry_continues_with(gate, text):
+    """Against string slicing: at each label position, an entry the partial word is a prefix of
+    continues with its next letter (a space once complete), and the context is the weighted sum
+    of those letters' embeddings plus the no-bias vector (written out entry by entry)."""
+    from tinyrnnt.bias.attention import NEXT_KEY
+
+    words = ["kell", "kelso", "a", "call", "maren"]
+    att = _module("attention", gate, values="next_token")
+    targets, lens = _targets([text])
+    feats = att.features([words], targets, lens)
+    mask, nxt = feats["attention_mask"][0], feats[NEXT_KEY][0]  # (U+1, N+1), (U+1, N)
+    for u in range(len(text) + 1):
+        partial = text[:u].split(" ")[-1]
+        for i, w in enumerate(words):
+            if mask[u, i + 1]:
+                assert w.startswith(partial)
+                letter = (w + " ")[len(partial)]
+                assert nxt[u, i].item() == (SPACE if letter == " " else encode(letter)[0])
+    w = torch.softmax(torch.randn(len(text) + 1, len(words) + 1).masked_fill(~mask, float("-inf")), -1)
+    by_entry = w[:, :1] * att.no_bias + sum(w[:, i + 1: i + 2] * att.next_embed.weight[nxt[:, i]]
+                                            for i in range(len(words)))
+    assert torch.allclose(att.next_context(w, nxt), by_entry, atol=1e-6)

@@ -42,7 +42,9 @@ from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE, encode
 ENCODERS = ("conv", "lstm")
 GATES = ("all", "prefix", "started")
 QUERIES = ("predictor", "encoder")
+VALUES = ("phrase", "next_token")
 MASK_KEY, ROW_KEY, GUIDE_KEY = "attention_mask", "attention_rows", "attention_guide"  # the module's own entries
+NEXT_KEY = "attention_next"  # each entry's next token after the partial word (values: next_token)
 ROW_CACHE = 200_000  # words whose token ids token_table keeps
 _ROWS: dict[str, np.ndarray] = {}
 
@@ -60,13 +62,17 @@ class AttentionSettings:
     # Weight of the guided attention loss in training (tinyrnnt.bias.guide): the attention is told
     # which entry the transcript is spelling at each label position; 0 = none. Needs query: predictor.
     guide: float = 0.0
+    # What an attended entry gives: its phrase vector ("phrase", CLAS), or an embedding of its next
+    # token after the partial word being spelled ("next_token"; a space once the entry is complete),
+    # so the context says which letter the attended entries continue with. Needs a phrase gate.
+    values: str = "phrase"
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
 
         require(self, "bias.options", positive=("dim", "embed", "width"), at_least_zero=("guide",))
         for name, value, choices in (("encoder", self.encoder, ENCODERS), ("phrase_gate", self.phrase_gate, GATES),
-                                     ("query", self.query, QUERIES)):
+                                     ("query", self.query, QUERIES), ("values", self.values, VALUES)):
             if value not in choices:
                 raise ConfigError(f"bias.options.{name} must be one of {list(choices)}, got {value!r}")
         if self.width % 2 == 0:
@@ -74,6 +80,9 @@ class AttentionSettings:
         if self.query == "encoder" and self.phrase_gate != "all":
             raise ConfigError(f"bias.options.phrase_gate {self.phrase_gate!r} needs the label history, so "
                               "query: predictor; with query: encoder it must be 'all'")
+        if self.values == "next_token" and self.phrase_gate == "all":
+            raise ConfigError("bias.options.values 'next_token' needs phrase_gate 'prefix' or 'started' "
+                              "(the entries' match positions); got phrase_gate 'all'")
         if self.query == "encoder" and self.guide > 0:
             raise ConfigError("bias.options.guide needs query: predictor (its targets are label positions); "
                               f"got query: encoder with guide {self.guide}")
@@ -139,6 +148,20 @@ def advance_gate(pos: Tensor, fresh: Tensor, tokens: Tensor, table: Tensor, leng
     return new, tokens == SPACE
 
 
+def next_tokens(table: Tensor, lengths: Tensor, pos: Tensor) -> Tensor:
+    """Each entry's token after `pos` matched tokens, a space once it is complete: table (..., N, L),
+    lengths (..., N), pos (..., N) broadcast against them -> (..., N). Entries not being spelled
+    (pos -1) get their first token; the phrase gate gives them no weight.
+
+    >>> t, n = token_table(["ab", "b"])
+    >>> next_tokens(t, n, torch.tensor([1, 1])).tolist() == [4, SPACE]
+    True
+    """
+    table, pos = torch.broadcast_tensors(table, pos[..., None].clamp_min(0))
+    at = table.gather(-1, pos[..., :1].clamp(max=table.shape[-1] - 1))[..., 0]  # (..., N)
+    return torch.where(pos[..., 0] >= lengths, torch.full_like(at, SPACE), at)
+
+
 class Memory:
     """The distinct lists of a set of rows (beam search gives each utterance's list once per
     hypothesis slot), each list's entries as indices into the distinct words, and which list
@@ -180,6 +203,8 @@ class ListAttention(BiasingInput):
         self.query = nn.Linear(asker, o.dim)
         self.key = nn.Linear(o.dim, o.dim)
         self.to_joiner = nn.Linear(o.dim, joiner_dim)
+        if o.values == "next_token":
+            self.next_embed = nn.Embedding(VOCAB_SIZE, o.dim)
 
     def encode_phrases(self, ids: Tensor, lengths: Tensor) -> Tensor:
         """(W, L) token ids -> (W, Da) phrase vectors, independent of the padding."""
@@ -263,14 +288,15 @@ class ListAttention(BiasingInput):
         spread[which, slot] = w
         return torch.bmm(spread, values)[which, slot], w  # (n, Da), (n, N+1)
 
-    def gate_masks(self, mem: Memory, targets: Tensor) -> Tensor:
-        """Which entries may be attended to at every label position: (B, U+1, N+1), no-bias first."""
+    def gate_masks(self, mem: Memory, targets: Tensor) -> tuple[Tensor, Tensor | None]:
+        """Which entries may be attended to at every label position, (B, U+1, N+1) with no-bias
+        first, and with a phrase gate each entry's next token there, (B, U+1, N) (else None)."""
         B, U = targets.shape
         N = mem.index.shape[1]
         listed = mem.valid[mem.which]  # (B, N)
         valid = torch.cat([torch.ones(B, 1, dtype=torch.bool), listed], dim=1)  # (B, N+1)
         if self.opts.phrase_gate == "all":
-            return valid[:, None].expand(B, U + 1, N + 1)
+            return valid[:, None].expand(B, U + 1, N + 1), None
         index = mem.index[mem.which]  # (B, N)
         table, lengths = mem.ids[index], mem.lengths[index]  # (B, N, L), (B, N)
         pos, fresh = torch.zeros(B, N, dtype=torch.long), torch.ones(B, dtype=torch.bool)
@@ -280,12 +306,23 @@ class ListAttention(BiasingInput):
             steps.append(pos)
         pos = torch.stack(steps, dim=1)  # (B, U+1, N)
         ok = pos > 0 if self.opts.phrase_gate == "started" else pos >= 0
-        return torch.cat([torch.ones(B, U + 1, 1, dtype=torch.bool), ok & listed[:, None]], dim=2)
+        mask = torch.cat([torch.ones(B, U + 1, 1, dtype=torch.bool), ok & listed[:, None]], dim=2)
+        return mask, next_tokens(table[:, None], lengths[:, None], pos)
+
+    def next_context(self, w: Tensor, tokens: Tensor) -> Tensor:
+        """Context of next-token values: weights (..., N+1), no-bias first, and each entry's next
+        token (..., N) -> (..., Da). The weights are summed per token first (entries that continue
+        with the same letter share one value), then embedded."""
+        per_token = w.new_zeros(*w.shape[:-1], VOCAB_SIZE).scatter_add_(-1, tokens, w[..., 1:])  # (..., V)
+        return per_token @ self.next_embed.weight + w[..., :1] * self.no_bias
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         mem = Memory(lists)
         keys, values = self.entries(mem)  # (lists, N+1, Da)
-        out = {MASK_KEY: self.gate_masks(mem, targets), ROW_KEY: (keys[mem.which], values[mem.which])}
+        mask, nxt = self.gate_masks(mem, targets)
+        out = {MASK_KEY: mask, ROW_KEY: (keys[mem.which], values[mem.which])}
+        if self.opts.values == "next_token":
+            out[NEXT_KEY] = nxt  # (B, U+1, N)
         if self.training and self.opts.guide > 0:
             out[GUIDE_KEY] = guide_targets(lists, targets, target_lens)  # (B, U+1)
         return out
@@ -294,6 +331,8 @@ class ListAttention(BiasingInput):
         if self.opts.query != "predictor":
             return features
         context, w = self.attend_rows(self.query(pred), features[ROW_KEY], features[MASK_KEY])  # (..., Da)
+        if NEXT_KEY in features:
+            context = self.next_context(w, features[NEXT_KEY])
         out = dict(features)
         if GUIDE_KEY in features:  # training only: the guided attention loss
             out["loss"] = self.opts.guide * guide_loss(w, features[GUIDE_KEY])
@@ -357,13 +396,16 @@ class AttentionBiaser(Biaser):
         rows = state[0]
         which = self.mem.which[rows]  # (n,)
         valid = torch.cat([torch.ones(len(rows), 1, dtype=torch.bool), self.mem.valid[which]], dim=1)  # (n, N+1)
+        out = {MASK_KEY: valid}
         if self.gated:
             pos = state[1]
             ok = pos > 0 if self.module.opts.phrase_gate == "started" else pos >= 0
             valid[:, 1:] &= ok
-        if self.shared:
-            return {MASK_KEY: valid, ROW_KEY: (self.keys, self.values)}
-        return {MASK_KEY: valid, ROW_KEY: (self.keys, self.values, which)}  # packed per list in attend_grouped
+            if self.module.opts.values == "next_token":
+                out[NEXT_KEY] = next_tokens(self.table[rows], self.lengths[rows], pos)  # (n, N)
+        # packed per list in attend_grouped unless one list serves every row
+        out[ROW_KEY] = (self.keys, self.values) if self.shared else (self.keys, self.values, which)
+        return out
 
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
         return self.module.after_predictor(features, pred)
