@@ -124,7 +124,8 @@ def token_table(words: list[str]) -> tuple[Tensor, Tensor]:
     return torch.from_numpy(ids), torch.from_numpy(lengths)
 
 
-def advance_gate(pos: Tensor, fresh: Tensor, tokens: Tensor, table: Tensor, lengths: Tensor) -> tuple[Tensor, Tensor]:
+def advance_gate(pos: Tensor, fresh: Tensor, tokens: Tensor, table: Tensor | None, lengths: Tensor,
+                 at: Tensor | None = None, first: Tensor | None = None) -> tuple[Tensor, Tensor]:
     """Match positions after one token: pos (n, N) tokens of each entry matched so far (-1 = not
     being spelled), fresh (n,) true at a word start, tokens (n,), table (n, N, L), lengths (n, N).
 
@@ -138,11 +139,12 @@ def advance_gate(pos: Tensor, fresh: Tensor, tokens: Tensor, table: Tensor, leng
     >>> pos.tolist()
     [[1, -1]]
     """
-    L = table.shape[-1]
-    at = table.gather(2, pos.clamp(0, L - 1)[..., None])[..., 0]  # (n, N) the entry's next token
+    if at is None:  # at, first: each entry's token at pos and its first token, when gathered already
+        at = table.gather(2, pos.clamp(0, table.shape[-1] - 1)[..., None])[..., 0]  # (n, N) the entry's next token
+    first = table[..., 0] if first is None else first  # (n, N)
     y = tokens[:, None]  # (n, 1)
     cont = (pos >= 0) & (pos < lengths) & (at == y)
-    begin = fresh[:, None] & (table[..., 0] == y)
+    begin = fresh[:, None] & (first == y)
     new = torch.where(cont, pos + 1, torch.where(y == SPACE, torch.zeros_like(pos),
                                                  torch.where(begin, torch.ones_like(pos), torch.full_like(pos, -1))))
     return new, tokens == SPACE
@@ -378,6 +380,7 @@ class AttentionBiaser(Biaser):
         if self.gated:
             index = self.mem.index[self.mem.which]  # (R, N)
             self.table, self.lengths = self.mem.ids[index], self.mem.lengths[index]  # (R, N, L), (R, N)
+            self.first = self.table[..., 0]  # (R, N)
 
     def start(self, B: int):
         rows = torch.arange(B)
@@ -389,8 +392,18 @@ class AttentionBiaser(Biaser):
         if not self.gated:
             return state
         rows, pos, fresh = state
-        new_pos, new_fresh = advance_gate(pos, fresh, tokens, self.table[rows], self.lengths[rows])
+        new_pos, new_fresh = advance_gate(pos, fresh, tokens, None, self.lengths[rows], at=self.token_at(rows, pos),
+                                          first=self.first[rows])
         return rows, torch.where(emit[:, None], new_pos, pos), torch.where(emit, new_fresh, fresh)
+
+    def token_at(self, rows: Tensor, pos: Tensor) -> Tensor:
+        """Each entry's token at pos (clamped into the entry's row of the table), (n, N).
+
+        subtle: read from the flat table by index; self.table[rows] would copy (n, N, L) tokens at
+        every step, which at N = 5000 cost more than the attention itself."""
+        R, N, L = self.table.shape
+        at = (rows[:, None] * N + torch.arange(N)) * L + pos.clamp(0, L - 1)  # (n, N)
+        return self.table.reshape(-1)[at]
 
     def features(self, state) -> dict:
         rows = state[0]
@@ -402,7 +415,7 @@ class AttentionBiaser(Biaser):
             ok = pos > 0 if self.module.opts.phrase_gate == "started" else pos >= 0
             valid[:, 1:] &= ok
             if self.module.opts.values == "next_token":
-                out[NEXT_KEY] = next_tokens(self.table[rows], self.lengths[rows], pos)  # (n, N)
+                out[NEXT_KEY] = torch.where(pos >= self.lengths[rows], SPACE, self.token_at(rows, pos))  # (n, N)
         # packed per list in attend_grouped unless one list serves every row
         out[ROW_KEY] = (self.keys, self.values) if self.shared else (self.keys, self.values, which)
         return out
