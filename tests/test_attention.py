@@ -232,11 +232,12 @@ def test_characters_outside_the_inventory_are_refused_where_lists_are_read(entry
     ({"encoder": "transformer"}, "encoder must be one of"),
     ({"width": 4}, "width must be odd"),
     ({"dim": 0}, "dim must be above 0"),
-    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, guide, phrase_gate, query, values, width"),
+    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, guide, phrase_gate, query, steer, values, width"),
     ({"guide": -1}, "guide cannot be negative"),
     ({"query": "encoder", "guide": 1.0}, "guide needs query: predictor"),
     ({"values": "next_token"}, "needs phrase_gate 'prefix' or 'started'"),
     ({"values": "letters"}, "values must be one of"),
+    ({"steer": True}, "steer needs values: next_token"),
     ({"query": "encoder", "phrase_gate": "prefix"}, "needs the label history"),
     ({"query": "joiner"}, "query must be one of"),
 ])
@@ -449,4 +450,49 @@ def test_next_token_values_are_the_letter_each_open_entry_continues_with(gate, t
     w = torch.softmax(torch.randn(len(text) + 1, len(words) + 1).masked_fill(~mask, float("-inf")), -1)
     by_entry = w[:, :1] * att.no_bias + sum(w[:, i + 1: i + 2] * att.next_embed.weight[nxt[:, i]]
                                             for i in range(len(words)))
-    assert torch.allclose(att.next_context(w, nxt), by_entry, atol=1e-6)
+    assert torch.allclose(att.next_context(w, nxt)[0], by_entry, atol=1e-6)
+
+
+def test_steered_mixing_target_is_the_attention_weighted_mixture_and_decodes_as_it_trains():
+    """trie + attention with steer: (1) the weighted mixing boost against the mixture's definition,
+    (1 - w) q + w t with t proportional to the weights (blank untouched); (2) the steered "logits"
+    feature and the joiner feature are the same in training and decoding for the same history;
+    (3) it needs the mixing boost."""
+    from tinyrnnt.bias.trie_cue import weighted_mix_correction
+
+    torch.manual_seed(8)
+    logits = torch.randn(4, VOCAB_SIZE) * 3
+    weights = torch.rand(4, VOCAB_SIZE) * (torch.rand(4, VOCAB_SIZE) < 0.3)
+    weights[:, 0] = 0
+    weights[0] = 0  # no weight: nothing changes
+    gate = torch.randn(4)
+    p = torch.softmax(logits, -1)
+    mixed = torch.softmax(logits + weighted_mix_correction(logits, weights, gate), -1)
+    assert torch.allclose(mixed[:, 0], p[:, 0], atol=1e-6) and torch.allclose(mixed[0], p[0], atol=1e-6)
+    w = torch.sigmoid(gate)[1:, None]
+    q = p[1:, 1:] / p[1:, 1:].sum(-1, keepdim=True)
+    t = weights[1:, 1:] / weights[1:, 1:].sum(-1, keepdim=True)
+    assert torch.allclose(mixed[1:, 1:], (1 - p[1:, :1]) * ((1 - w) * q + w * t), atol=1e-6)
+
+    torch.manual_seed(9)
+    cfg = BiasConfig(kind="trie+attention", token_boost=True, boost_mode="mix",
+                     options={"phrase_gate": "prefix", "values": "next_token", "steer": True})
+    module = build_biasing(cfg, 24, 16, PRED, ENC).eval()
+    lists = [["kell", "kelso", "a"], ["kell", "maren"], []]
+    targets, lens = _targets(TEXTS)
+    pred = torch.randn(3, targets.shape[1] + 1, PRED)
+    train = module.after_predictor(module.features(lists, targets, lens), pred)
+    dec = module.decoder(lists)
+    state, rows = dec.start(3), []
+    for u in range(targets.shape[1] + 1):
+        rows.append(dec.after_predictor(dec.features(state), pred[:, u]))
+        if u < targets.shape[1]:
+            state = dec.advance(state, targets[:, u], torch.ones(3, dtype=torch.bool))
+    for key in ("logits", "joiner"):
+        decoded = torch.stack([r[key] for r in rows], dim=1)
+        for b in range(3):
+            n = int(lens[b]) + 1
+            assert torch.allclose(train[key][b, :n], decoded[b, :n], atol=1e-5)
+    assert (train["logits"][2] == 0).all()  # an empty list: no tree, nothing to steer
+    with pytest.raises(ConfigError, match="needs bias.token_boost: true and bias.boost_mode: mix"):
+        build_biasing(BiasConfig(kind="trie+attention", options=cfg.options), 24, 16, PRED, ENC)

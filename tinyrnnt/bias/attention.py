@@ -45,6 +45,7 @@ QUERIES = ("predictor", "encoder")
 VALUES = ("phrase", "next_token")
 MASK_KEY, ROW_KEY, GUIDE_KEY = "attention_mask", "attention_rows", "attention_guide"  # the module's own entries
 NEXT_KEY = "attention_next"  # each entry's next token after the partial word (values: next_token)
+TOKENS_KEY = "attention_tokens"  # attention's weight on each next token, (..., V) (values: next_token)
 ROW_CACHE = 200_000  # words whose token ids token_table keeps
 _ROWS: dict[str, np.ndarray] = {}
 
@@ -66,6 +67,10 @@ class AttentionSettings:
     # token after the partial word being spelled ("next_token"; a space once the entry is complete),
     # so the context says which letter the attended entries continue with. Needs a phrase gate.
     values: str = "phrase"
+    # trie + attention only: the trie's mixing boost mixes towards the attention's weights on the
+    # next tokens (uniform over the tree's allowed tokens where attention rests on no-bias) instead
+    # of uniform over them, so the two inputs do not hand the joiner the same signal twice.
+    steer: bool = False
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
@@ -83,6 +88,8 @@ class AttentionSettings:
         if self.values == "next_token" and self.phrase_gate == "all":
             raise ConfigError("bias.options.values 'next_token' needs phrase_gate 'prefix' or 'started' "
                               "(the entries' match positions); got phrase_gate 'all'")
+        if self.steer and self.values != "next_token":
+            raise ConfigError("bias.options.steer needs values: next_token (the weights it steers with)")
         if self.query == "encoder" and self.guide > 0:
             raise ConfigError("bias.options.guide needs query: predictor (its targets are label positions); "
                               f"got query: encoder with guide {self.guide}")
@@ -311,12 +318,12 @@ class ListAttention(BiasingInput):
         mask = torch.cat([torch.ones(B, U + 1, 1, dtype=torch.bool), ok & listed[:, None]], dim=2)
         return mask, next_tokens(table[:, None], lengths[:, None], pos)
 
-    def next_context(self, w: Tensor, tokens: Tensor) -> Tensor:
+    def next_context(self, w: Tensor, tokens: Tensor) -> tuple[Tensor, Tensor]:
         """Context of next-token values: weights (..., N+1), no-bias first, and each entry's next
-        token (..., N) -> (..., Da). The weights are summed per token first (entries that continue
-        with the same letter share one value), then embedded."""
-        per_token = w.new_zeros(*w.shape[:-1], VOCAB_SIZE).scatter_add_(-1, tokens, w[..., 1:])  # (..., V)
-        return per_token @ self.next_embed.weight + w[..., :1] * self.no_bias
+        token (..., N) -> (..., Da), and the weight on each token, (..., V). The weights are summed
+        per token first (entries that continue with the same letter share one value), then embedded."""
+        per_token = w.new_zeros(*w.shape[:-1], VOCAB_SIZE).scatter_add(-1, tokens, w[..., 1:])  # (..., V)
+        return per_token @ self.next_embed.weight + w[..., :1] * self.no_bias, per_token
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         mem = Memory(lists)
@@ -333,9 +340,9 @@ class ListAttention(BiasingInput):
         if self.opts.query != "predictor":
             return features
         context, w = self.attend_rows(self.query(pred), features[ROW_KEY], features[MASK_KEY])  # (..., Da)
-        if NEXT_KEY in features:
-            context = self.next_context(w, features[NEXT_KEY])
         out = dict(features)
+        if NEXT_KEY in features:
+            context, out[TOKENS_KEY] = self.next_context(w, features[NEXT_KEY])
         if GUIDE_KEY in features:  # training only: the guided attention loss
             out["loss"] = self.opts.guide * guide_loss(w, features[GUIDE_KEY])
         j = self.to_joiner(context)  # (..., Dj)

@@ -5,15 +5,23 @@ other trie settings) and an attention module (tinyrnnt.bias.attention, set by
 `bias.options`), and sums their joiner features; the token boost is the
 trie's. Trie + attention is the combination Jain et al. (Interspeech 2020)
 report as recalling more biased words than either alone.
+
+With `bias.options.steer` (next-token values, the mixing boost) the trie's
+mixing boost mixes towards the attention's weights on the next tokens rather
+than uniformly over the tokens the tree allows: t_v proportional to
+allowed_v (a_v + STEER_FLOOR), a_v the attention's weight on token v, so where
+attention rests on the no-bias entry t is uniform again. Our own variant.
 """
 
 from __future__ import annotations
 
 from torch import Tensor
 
-from tinyrnnt.bias.attention import AttentionBiaser, ListAttention
+from tinyrnnt.bias.attention import TOKENS_KEY, AttentionBiaser, ListAttention
 from tinyrnnt.bias.base import Biaser, BiasingInput, register
-from tinyrnnt.bias.trie_cue import TrieCue
+from tinyrnnt.bias.trie_cue import TrieCue, weighted_mix_correction
+
+STEER_FLOOR = 1e-3  # weight every allowed token keeps in the steered mixing target
 
 
 @register("trie+attention")
@@ -25,13 +33,25 @@ class TrieAndAttention(BiasingInput):
         super().__init__(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
         self.trie = TrieCue(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
         self.attention = ListAttention(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
+        self.steer = self.attention.opts.steer
+        if self.steer and not (cfg.token_boost and cfg.boost_mode == "mix"):
+            from tinyrnnt.config import ConfigError
+
+            raise ConfigError("bias.options.steer steers the trie's mixing boost: it needs bias.token_boost: true "
+                              f"and bias.boost_mode: mix (got {cfg.token_boost} and {cfg.boost_mode!r})")
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         return {**self.trie.features(lists, targets, target_lens),
                 **self.attention.features(lists, targets, target_lens)}
 
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
-        return self.attention.after_predictor(features, pred)
+        return self.steered(self.attention.after_predictor(features, pred))
+
+    def steered(self, features: dict) -> dict:
+        """The trie's allowed tokens weighted by the attention's next-token weights (steer), else as is."""
+        if not self.steer or "logits" not in features:
+            return features
+        return {**features, "logits": features["logits"] * (features[TOKENS_KEY] + STEER_FLOOR)}
 
     def after_encoder(self, features: dict, enc: Tensor, enc_lens: Tensor) -> dict:
         return self.attention.after_encoder(features, enc, enc_lens)
@@ -40,17 +60,20 @@ class TrieAndAttention(BiasingInput):
         return self.trie.hidden_readout()
 
     def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor, readout: Tensor | None = None) -> Tensor:
-        return self.trie.token_scores(hidden, feature, logits, readout)
+        if not self.steer:
+            return self.trie.token_scores(hidden, feature, logits, readout)
+        gate = self.trie.to_logits(hidden) if readout is None else readout  # (..., 1)
+        return self.trie.to_mix_scale * weighted_mix_correction(logits, feature, gate[..., 0])
 
     def decoder(self, lists) -> "BothBiaser":
-        return BothBiaser(self.trie.decoder(lists), self.attention.decoder(lists))
+        return BothBiaser(self.trie.decoder(lists), self.attention.decoder(lists), self)
 
 
 class BothBiaser(Biaser):
     """State: the trie node first, then the attention state's tensors (one flat tuple, rows first)."""
 
-    def __init__(self, trie: Biaser, attention: AttentionBiaser):
-        self.trie, self.attention = trie, attention
+    def __init__(self, trie: Biaser, attention: AttentionBiaser, module: TrieAndAttention):
+        self.trie, self.attention, self.module = trie, attention, module
 
     def start(self, B: int):
         return (self.trie.start(B), *self.attention.start(B))
@@ -62,7 +85,7 @@ class BothBiaser(Biaser):
         return {**self.trie.features(state[0]), **self.attention.features(state[1:])}
 
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
-        return self.attention.after_predictor(features, pred)
+        return self.module.steered(self.attention.after_predictor(features, pred))
 
     def frames(self, enc: Tensor) -> Tensor | None:
         return self.attention.frames(enc)

@@ -116,6 +116,28 @@ def mix_correction(logits: Tensor, cue: Tensor, gate: Tensor) -> Tensor:
     return _MixCorrection.apply(logits, cue, gate)
 
 
+def weighted_mix_correction(logits: Tensor, weights: Tensor, gate: Tensor) -> Tensor:
+    """mix_correction with t proportional to `weights` (..., V), non-negative, instead of uniform over
+    the allowed tokens: t_v = weights_v / sum(weights) where weights_v > 0. Plain autograd, so the
+    gradient reaches whatever computed the weights (attention's next-token distribution steering
+    the trie's mixing boost in trie + attention). With 0/1 weights it equals mix_correction.
+
+    >>> logits, gate = torch.tensor([0.0, 2.0, 0.0, -9.0]), torch.tensor(0.0)
+    >>> cue = torch.tensor([0.0, 0.0, 0.0, 1.0])
+    >>> torch.allclose(weighted_mix_correction(logits, cue, gate), mix_correction(logits, cue, gate))
+    True
+    """
+    z, w = logits[..., 1:], weights[..., 1:]  # (..., V-1), blank is token 0
+    total = w.sum(-1, keepdim=True)  # (..., 1)
+    live = (total > 0).to(logits.dtype)  # no weight anywhere changes nothing
+    g = gate[..., None]  # (..., 1)
+    lse = torch.logsumexp(z, dim=-1, keepdim=True)
+    log_t = torch.log(w.clamp(min=1e-30)) - torch.log(total.clamp(min=1e-30))  # (..., V-1)
+    s = g + lse + log_t - z
+    corr = nn.functional.logsigmoid(-g) * live + torch.where(w > 0, nn.functional.softplus(s), torch.zeros_like(s))
+    return nn.functional.pad(corr, (1, 0))  # (..., V)
+
+
 class _MixCorrection(torch.autograd.Function):
     """mix_correction with its gradient written out, in fewer passes over the lattice than
     autograd's chain of elementwise steps (the lattice is (B, T', U+1, V): every pass counts).
