@@ -153,14 +153,36 @@ def test_mixing_boost_keeps_blank_and_moves_mass_to_the_allowed_tokens():
     cue[:, 0] = 0
     cue[0] = 0  # a dead cue: nothing changes
     gate = torch.randn(5)
+    check_mixture(logits, mix_correction(logits, cue, gate), cue, gate)
+
+
+def check_mixture(logits, correction, weights, gate):
+    """Rows 1..: blank's probability kept and the rest (1 - w) q + w t, t proportional to the weights
+    (the mixture's definition); row 0 has no weight and must not change."""
     p = torch.softmax(logits, -1)
-    mixed = torch.softmax(logits + mix_correction(logits, cue, gate), -1)
+    mixed = torch.softmax(logits + correction, -1)
     assert torch.allclose(mixed[:, 0], p[:, 0], atol=1e-6) and torch.allclose(mixed[0], p[0], atol=1e-6)
     w = torch.sigmoid(gate)[1:, None]
     q = p[1:, 1:] / p[1:, 1:].sum(-1, keepdim=True)
-    t = cue[1:, 1:] / cue[1:, 1:].sum(-1, keepdim=True)
-    expected = (1 - p[1:, :1]) * ((1 - w) * q + w * t)
-    assert torch.allclose(mixed[1:, 1:], expected, atol=1e-6)
+    t = weights[1:, 1:] / weights[1:, 1:].sum(-1, keepdim=True)
+    assert torch.allclose(mixed[1:, 1:], (1 - p[1:, :1]) * ((1 - w) * q + w * t), atol=1e-6)
+
+
+def test_weighted_mixing_boost_is_the_mixture_with_a_weighted_target():
+    """weighted_mix_correction (trie + attention's steered boost): t proportional to the weights;
+    with 0/1 weights the same as mix_correction."""
+    from tinyrnnt.bias.trie_cue import mix_correction, weighted_mix_correction
+
+    torch.manual_seed(8)
+    logits = torch.randn(4, VOCAB_SIZE) * 3
+    weights = torch.rand(4, VOCAB_SIZE) * (torch.rand(4, VOCAB_SIZE) < 0.3)
+    weights[:, 0] = 0
+    weights[0] = 0  # no weight: nothing changes
+    gate = torch.randn(4)
+    check_mixture(logits, weighted_mix_correction(logits, weights, gate), weights, gate)
+    allowed = (weights > 0).float()
+    assert torch.allclose(weighted_mix_correction(logits, allowed, gate), mix_correction(logits, allowed, gate),
+                          atol=1e-5)
 
 
 def test_mixing_boost_gradient_passes_gradcheck():
