@@ -299,7 +299,7 @@ class ListAttention(BiasingInput):
 
     def gate_masks(self, mem: Memory, targets: Tensor) -> tuple[Tensor, Tensor | None]:
         """Which entries may be attended to at every label position, (B, U+1, N+1) with no-bias
-        first, and with a phrase gate each entry's next token there, (B, U+1, N) (else None)."""
+        first, and with next-token values each entry's next token there, (B, U+1, N) (else None)."""
         B, U = targets.shape
         N = mem.index.shape[1]
         listed = mem.valid[mem.which]  # (B, N)
@@ -316,6 +316,8 @@ class ListAttention(BiasingInput):
         pos = torch.stack(steps, dim=1)  # (B, U+1, N)
         ok = pos > 0 if self.opts.phrase_gate == "started" else pos >= 0
         mask = torch.cat([torch.ones(B, U + 1, 1, dtype=torch.bool), ok & listed[:, None]], dim=2)
+        if self.opts.values != "next_token":
+            return mask, None
         return mask, next_tokens(table[:, None], lengths[:, None], pos)
 
     def next_context(self, w: Tensor, tokens: Tensor) -> tuple[Tensor, Tensor]:
@@ -330,7 +332,7 @@ class ListAttention(BiasingInput):
         keys, values = self.entries(mem)  # (lists, N+1, Da)
         mask, nxt = self.gate_masks(mem, targets)
         out = {MASK_KEY: mask, ROW_KEY: (keys[mem.which], values[mem.which])}
-        if self.opts.values == "next_token":
+        if nxt is not None:
             out[NEXT_KEY] = nxt  # (B, U+1, N)
         if self.training and self.opts.guide > 0:
             out[GUIDE_KEY] = guide_targets(lists, targets, target_lens)  # (B, U+1)

@@ -19,7 +19,7 @@ from torch import Tensor
 
 from tinyrnnt.bias.attention import TOKENS_KEY, AttentionBiaser, ListAttention
 from tinyrnnt.bias.base import Biaser, BiasingInput, register
-from tinyrnnt.bias.trie_cue import TrieCue, weighted_mix_correction
+from tinyrnnt.bias.trie_cue import TrieCue
 
 STEER_FLOOR = 1e-3  # weight every allowed token keeps in the steered mixing target
 
@@ -60,10 +60,7 @@ class TrieAndAttention(BiasingInput):
         return self.trie.hidden_readout()
 
     def token_scores(self, hidden: Tensor, feature: Tensor, logits: Tensor, readout: Tensor | None = None) -> Tensor:
-        if not self.steer:
-            return self.trie.token_scores(hidden, feature, logits, readout)
-        gate = self.trie.to_logits(hidden) if readout is None else readout  # (..., 1)
-        return self.trie.to_mix_scale * weighted_mix_correction(logits, feature, gate[..., 0])
+        return self.trie.token_scores(hidden, feature, logits, readout, weighted=self.steer)
 
     def decoder(self, lists) -> "BothBiaser":
         return BothBiaser(self.trie.decoder(lists), self.attention.decoder(lists), self)

@@ -76,11 +76,14 @@ class TrieCue(BiasingInput):
     def hidden_readout(self) -> nn.Linear | None:
         return self.to_logits  # the gate, computed with the joiner's output layer
 
-    def token_scores(self, hidden: Tensor, cue: Tensor, logits: Tensor, readout: Tensor | None = None) -> Tensor:
+    def token_scores(self, hidden: Tensor, cue: Tensor, logits: Tensor, readout: Tensor | None = None,
+                     weighted: bool = False) -> Tensor:
+        """weighted: the cue holds weights of a mixing target, not 0/1 (weighted_mix_correction)."""
         gate = self.to_logits(hidden) if readout is None else readout  # (..., 1)
         if self.cfg.boost_mode == "add":
             return gate * cue  # (..., 1) * (..., V)
-        return self.to_mix_scale * mix_correction(logits, cue, gate[..., 0])
+        mix = weighted_mix_correction if weighted else mix_correction
+        return self.to_mix_scale * mix(logits, cue, gate[..., 0])
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         trees = BatchedTrees([self.tree(words) for words in lists])
