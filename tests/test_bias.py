@@ -185,6 +185,26 @@ def test_weighted_mixing_boost_is_the_mixture_with_a_weighted_target():
                           atol=1e-5)
 
 
+def test_heard_mixing_boost_is_the_mixture_with_the_models_own_target():
+    """heard_mix_correction (bias.boost_mode: mix_heard): t proportional to q ** sharpness on the
+    allowed tokens (the mixture's definition, as above); sharpness 0 is the uniform target."""
+    from tinyrnnt.bias.trie_cue import heard_mix_correction, mix_correction
+
+    torch.manual_seed(9)
+    logits = torch.randn(4, VOCAB_SIZE) * 3
+    allowed = (torch.rand(4, VOCAB_SIZE) < 0.3).float()
+    allowed[:, 0] = 0
+    allowed[0] = 0
+    allowed[1:, 5] = 1  # at least one allowed token where the cue is live
+    gate = torch.randn(4)
+    for sharpness in (0.0, 0.5, 1.0, 2.0):
+        q_power = torch.softmax(logits[:, 1:], -1) ** sharpness
+        weights = torch.nn.functional.pad(q_power, (1, 0)) * allowed
+        check_mixture(logits, heard_mix_correction(logits, allowed, gate, torch.tensor(sharpness)), weights, gate)
+    assert torch.allclose(heard_mix_correction(logits, allowed, gate, torch.tensor(0.0)),
+                          mix_correction(logits, allowed, gate), atol=1e-5)
+
+
 def test_mixing_boost_gradient_passes_gradcheck():
     """The mixing boost's hand-written backward pass against finite differences
     (torch.autograd.gradcheck, double precision): a lattice whose cue is shared over frames as in

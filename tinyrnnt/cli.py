@@ -198,7 +198,7 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("settings", nargs="*",
                    help="section.key=value, e.g. train.steps=600 model.encoder_dim=192 bias.kind=trie "
                         "(bias.kind: none, trie, attention or trie+attention; bias.inject: joiner, predictor or both; "
-                        "bias.boost_mode: add or mix); unknown keys list the valid ones")
+                        "bias.boost_mode: add, mix or mix_heard); unknown keys list the valid ones")
     t.set_defaults(fn=_train)
 
     d = sub.add_parser("decode", help="decode a split with a checkpoint; write hypotheses and scores")

@@ -55,7 +55,7 @@ from torch import Tensor, nn
 from tinyrnnt.config import ConfigError
 
 INJECTION_POINTS = ("joiner", "predictor", "both")
-BOOST_MODES = ("add", "mix")
+BOOST_MODES = ("add", "mix", "mix_heard")
 RESPELL_LETTERS = ("seen_pairs", "any")
 REGISTRY: dict[str, type["BiasingInput"]] = {}
 BUILT_IN = ("tinyrnnt.bias.trie_cue", "tinyrnnt.bias.attention", "tinyrnnt.bias.trie_and_attention")  # imported before a kind is looked up
@@ -110,7 +110,10 @@ class BiasConfig:
     token_boost: bool = False
     # How the token boost acts: "add" puts gate x cue on the logits; "mix" mixes the model's choice
     # among non-blank tokens with a uniform choice among the tokens the tree allows (gate = weight),
-    # blank untouched, so following the tree does not depend on how unlikely the model finds a letter.
+    # blank untouched, so following the tree does not depend on how unlikely the model finds a letter;
+    # "mix_heard" mixes towards the model's own choice among the allowed tokens instead (sharpened by
+    # a learned exponent), so where the tree allows several letters the sound picks one
+    # (trie_cue.heard_mix_correction).
     boost_mode: str = "add"
     word_start: str = "first_tokens"  # cue at word starts: first tokens of all listed words, or "none"
     valid_list_size: int = 100  # list size of the valid split's lists during training

@@ -34,7 +34,7 @@ class TrieAndAttention(BiasingInput):
         self.trie = TrieCue(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
         self.attention = ListAttention(cfg, joiner_dim, embed_dim, pred_dim, enc_dim)
         self.steer = self.attention.opts.steer
-        if self.steer and not (cfg.token_boost and cfg.boost_mode == "mix"):
+        if self.steer and not (cfg.token_boost and cfg.boost_mode in ("mix", "mix_heard")):
             from tinyrnnt.config import ConfigError
 
             raise ConfigError("bias.options.steer steers the trie's mixing boost: it needs bias.token_boost: true "

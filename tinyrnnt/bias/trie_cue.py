@@ -38,10 +38,13 @@ class TrieCue(BiasingInput):
         if self.to_logits is not None:
             nn.init.zeros_(self.to_logits.weight)
             nn.init.zeros_(self.to_logits.bias)
-            if cfg.boost_mode == "mix":
+            if cfg.boost_mode in ("mix", "mix_heard"):
                 nn.init.constant_(self.to_logits.bias, MIX_GATE_START)
                 # scales the whole correction; 0 gives exactly the plain logits
                 self.to_mix_scale = nn.Parameter(torch.ones(()))
+            if cfg.boost_mode == "mix_heard":
+                # sharpness of the mixing target over the allowed tokens: 0 uniform, 1 the model's own
+                self.mix_sharpness = nn.Parameter(torch.ones(()))
         # subtle: cue dropout draws from its own generator (seeded from the training seed, which
         # seed_everything set before the model was built), so the biased arm consumes the global
         # stream exactly as its control does: same dropout masks, same feature masks.
@@ -82,6 +85,8 @@ class TrieCue(BiasingInput):
         gate = self.to_logits(hidden) if readout is None else readout  # (..., 1)
         if self.cfg.boost_mode == "add":
             return gate * cue  # (..., 1) * (..., V)
+        if self.cfg.boost_mode == "mix_heard" and not weighted:
+            return self.to_mix_scale * heard_mix_correction(logits, cue, gate[..., 0], self.mix_sharpness)
         mix = weighted_mix_correction if weighted else mix_correction
         return self.to_mix_scale * mix(logits, cue, gate[..., 0])
 
@@ -138,6 +143,31 @@ def weighted_mix_correction(logits: Tensor, weights: Tensor, gate: Tensor) -> Te
     log_t = torch.log(w.clamp(min=1e-30)) - torch.log(total.clamp(min=1e-30))  # (..., V-1)
     s = g + lse + log_t - z
     corr = nn.functional.logsigmoid(-g) * live + torch.where(w > 0, nn.functional.softplus(s), torch.zeros_like(s))
+    return nn.functional.pad(corr, (1, 0))  # (..., V)
+
+
+def heard_mix_correction(logits: Tensor, cue: Tensor, gate: Tensor, sharpness: Tensor) -> Tensor:
+    """mix_correction with the mixing target t over the allowed tokens taken from the model itself:
+    t_v proportional to q_v ** sharpness on the tokens the cue allows (0 on the rest), q the model's
+    non-blank choice. Sharpness 0 is the uniform target of mix_correction; 1 keeps the model's own
+    preference among the allowed tokens, so where the tree allows several letters the sound picks
+    one, and where it allows one the target is that letter whatever the model thinks of it (the
+    pointer over the tree's children of Sun et al. 2021, here with the model's own scores as the
+    pointer). Plain autograd, so the sharpness is learned.
+
+    >>> logits, gate = torch.tensor([0.0, 2.0, 0.0, -9.0]), torch.tensor(0.0)
+    >>> cue = torch.tensor([0.0, 0.0, 1.0, 1.0])
+    >>> torch.allclose(heard_mix_correction(logits, cue, gate, torch.tensor(0.0)), mix_correction(logits, cue, gate))
+    True
+    """
+    z, allowed = logits[..., 1:], cue[..., 1:] > 0  # (..., V-1), blank is token 0
+    live = allowed.any(-1, keepdim=True)  # (..., 1)
+    g = gate[..., None]  # (..., 1)
+    lse = torch.logsumexp(z, dim=-1, keepdim=True)  # (..., 1)
+    sharp = sharpness * z  # (..., V-1)
+    lse_allowed = torch.logsumexp(sharp.masked_fill(~allowed, -1e30), dim=-1, keepdim=True)  # (..., 1)
+    s = g + lse + sharp - lse_allowed - z  # log(w / (1 - w)) + log t_v - log q_v
+    corr = nn.functional.logsigmoid(-g) * live + torch.where(allowed, nn.functional.softplus(s), torch.zeros_like(s))
     return nn.functional.pad(corr, (1, 0))  # (..., V)
 
 

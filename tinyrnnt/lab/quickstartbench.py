@@ -22,10 +22,10 @@ import time
 from pathlib import Path
 
 STEP_KINDS = {  # biasing input -> its settings (the quickstart's trie arm; attention as in full_ablation)
-    "trie": ["bias.kind=trie", "bias.inject=both", "bias.cue_dim=128", "bias.token_boost=true", "bias.boost_mode=mix"],
+    "trie": ["bias.kind=trie", "bias.inject=both", "bias.cue_dim=128", "bias.token_boost=true", "bias.boost_mode=mix_heard"],
     "attention": ["bias.kind=attention", "bias.options={dim: 64, phrase_gate: all}"],
     "trie+attention": ["bias.kind=trie+attention", "bias.inject=both", "bias.cue_dim=128", "bias.token_boost=true",
-                       "bias.boost_mode=mix", "bias.options={dim: 64, phrase_gate: all}"],
+                       "bias.boost_mode=mix_heard", "bias.options={dim: 64, phrase_gate: all}"],
 }
 
 
