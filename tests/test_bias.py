@@ -306,3 +306,18 @@ def test_respelling_letters_setting_is_checked():
         ListSampling(respell_letters="some")
     with pytest.raises(ConfigError, match="respell_unlisted must be one of"):
         ListSampling(respell_unlisted="drop")
+
+
+def test_token_boost_scale_weighs_the_token_scores_only():
+    """Transducer.token_logits: the biasing input's token scores times token_boost_scale (decode-time
+    decode.model_boost_scale); 0 gives the joiner's own output layer, 1 the scores as trained."""
+    torch.manual_seed(3)
+    m = Transducer(SMALL, BiasConfig(kind="trie", cue_dim=8, token_boost=True, boost_mode="mix_heard")).eval()
+    hidden = torch.randn(3, SMALL.joiner_dim)
+    cue = (torch.rand(3, VOCAB_SIZE) < 0.3).float()
+    plain = m.joiner.out(hidden)
+    full = m.token_logits(hidden, cue)
+    m.token_boost_scale = 0.0
+    assert torch.allclose(m.token_logits(hidden, cue), plain, atol=1e-6)
+    m.token_boost_scale = 0.5
+    assert torch.allclose(m.token_logits(hidden, cue), plain + 0.5 * (full - plain), atol=1e-5)

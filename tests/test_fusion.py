@@ -81,6 +81,8 @@ def test_after_trigger_only_boosts_after_a_phrase_of_the_class():
     ("decode.triggers={crew: 'call 9'}", "outside the token inventory"),
     ("decode.boost_where=after_trigger", "needs decode.triggers"),
     ("decode.boost_where=nearby", "must be one of"),
+    ("decode.model_boost_scale=-1", "must be >= 0"),
+    ("decode.model_boost_scale=.inf", "finite number"),
 ])
 def test_bad_boost_settings_are_clear_errors(setting, message):
     with pytest.raises(ConfigError, match=message):
@@ -90,6 +92,11 @@ def test_bad_boost_settings_are_clear_errors(setting, message):
 def test_boost_needs_beam_search_and_list_words_in_the_inventory():
     with pytest.raises(ConfigError, match="needs decode.search=beam"):
         C.apply_overrides(ExperimentConfig(), ["decode.boost_weight=1"])
+    with pytest.raises(ConfigError, match="model_boost_scale balances.*needs decode.boost_weight"):
+        C.apply_overrides(ExperimentConfig(), ["decode.model_boost_scale=0.5"])
+    boost = C.apply_overrides(ExperimentConfig(), ["decode.search=beam", "decode.boost_weight=1",
+                                                   "decode.model_boost_scale=0.25"]).decode.boost()
+    assert boost["model_scale"] == 0.25
     with pytest.raises(ConfigError, match=r"entry 2 \('ma7a'\).*'7'"):
         Booster([["kell", "ma7a"]], 1.0)
     with pytest.raises(ConfigError, match="empty"):

@@ -43,7 +43,7 @@ evaluate:
   decoding:
     greedy: {{}}
     beam_fusion: {{search: beam, beam: 2, boost_weight: tuned}}
-  tune: {{list_size: 10, weights: [0, 2]}}
+  tune: {{list_size: 10, weights: [0, 2], model_scales: [0, 1]}}
 """)
     rows = run_recipe(recipe, quiet=True)
     runs = {"baseline", "trie", "trie_control"}
@@ -52,6 +52,11 @@ evaluate:
         for split in ("test_unseen", "test_soundalike") for n in (0, 10)}
     tuned = {r["run"]: r["boost_weight"] for r in rows if r["decoding"] == "beam_fusion"}
     assert set(tuned.values()) <= {0.0, 2.0}
+    trie_curve = json.loads((tmp_path / "runs" / "smoke" / "trie" / "results" / "boost_curve.beam_fusion.json").read_text())
+    assert [(r["weight"], r["model_boost_scale"]) for r in trie_curve["rows"]] == [(0.0, 1.0), (2.0, 1.0), (2.0, 0.0)]
+    control_curve = json.loads((tmp_path / "runs" / "smoke" / "trie_control" / "results" /
+                                "boost_curve.beam_fusion.json").read_text())
+    assert len(control_curve["rows"]) == 2  # no token boost of its own: the weight alone
     assert (tmp_path / "runs" / "smoke" / "trie" / "results" / "boost_curve.beam_fusion.png").is_file()
     rows = [r for r in rows if r["decoding"] == "greedy"]
     # equal training: the trie arm and its control both stand on the baseline's 6 steps plus 4 of their own
@@ -91,6 +96,10 @@ evaluate:
         evaluate(model, split, list_size=10, search="beam", boost=dict(boost, triggers={"crew": ["call"]}))
     sweep = sweep_boost(model, str(corpus), weights=(0.0, 2.0), list_size=10, beam=2)
     assert [r["weight"] for r in sweep["rows"]] == [0.0, 2.0] and sweep["chosen"] in (0.0, 2.0)
+    # the model's own boost switched off while fusing: the token scores go, and only for that call
+    assert model.token_boost_scale == 1.0
+    _, off = evaluate(model, split, list_size=10, search="beam", beam=2, boost=dict(boost, model_scale=0.0))
+    assert off["model_boost_scale"] == 0.0 and model.token_boost_scale == 1.0
     paths = write_curve(tmp_path / "curve", "boost", sweep)
     assert all(p.is_file() for p in paths) and paths[2].read_bytes()[:4] == b"\x89PNG"
 

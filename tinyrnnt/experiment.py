@@ -24,6 +24,10 @@ class DecodeConfig:
     boost_weight: float = 0.0
     boost_where: str = "anywhere"
     triggers: dict = field(default_factory=dict)
+    # With shallow fusion on: the weight of the biased model's own token boost (the trie's mixing
+    # boost) while decoding, 1 = as trained; 0 leaves the boosting to fusion while the cue still
+    # feeds joiner and predictor. Both push list words, so together they can over-boost.
+    model_boost_scale: float = 1.0
     # Sounds-like spellings (tinyrnnt.bias.soundslike): each list entry whose pronunciation is known
     # is also listed in up to this many spellings the recognizer itself writes for its sound, and a
     # word decoded in one of them is written as the entry; 0 = lists as given.
@@ -38,6 +42,12 @@ class DecodeConfig:
         if self.boost_where not in BOOST_WHERE:
             raise C.ConfigError(f"decode.boost_where must be one of {list(BOOST_WHERE)}, got {self.boost_where!r}")
         self.boost_weight = check_weight(self.boost_weight)
+        self.model_boost_scale = check_weight(self.model_boost_scale, "decode.model_boost_scale")
+        if self.model_boost_scale < 0:
+            raise C.ConfigError(f"decode.model_boost_scale must be >= 0, got {self.model_boost_scale:g}")
+        if self.model_boost_scale != 1.0 and self.boost_weight == 0:
+            raise C.ConfigError("decode.model_boost_scale balances the model's boost against shallow fusion: "
+                                "it needs decode.boost_weight (not 0)")
         if self.boost_weight != 0 and self.search != "beam":
             raise C.ConfigError("decode.boost_weight needs decode.search=beam (shallow fusion scores beam hypotheses)")
         parse_triggers(self.triggers)  # checks phrases now, not mid-decoding
@@ -51,7 +61,8 @@ class DecodeConfig:
         if self.boost_where == "after_trigger" and not self.triggers:  # checked here: settings come one by one
             raise C.ConfigError("decode.boost_where=after_trigger needs decode.triggers, e.g. "
                                 "{invented_name: 'call | message'}")
-        return {"weight": self.boost_weight, "where": self.boost_where, "triggers": parse_triggers(self.triggers)}
+        return {"weight": self.boost_weight, "where": self.boost_where, "triggers": parse_triggers(self.triggers),
+                "model_scale": self.model_boost_scale}
 
 
 SEARCHES = ("greedy", "beam")

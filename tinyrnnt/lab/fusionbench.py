@@ -4,7 +4,8 @@ Models: the trie recipe's baseline, trie arm and its equal-steps control
 (trained by the `trie` benchmark's code, or read back when already trained with
 the same settings). The boost weight is tuned on the valid split (lowest WER),
 separately for each model it is applied to, and the chosen weight is used on
-test. Arms on the unseen-name test split at N in {10, 100, 1000}: beam
+test; for the trie arm together with the weight of its own token boost while
+fusing (MODEL_SCALES). Arms on the unseen-name test split at N in {10, 100, 1000}: beam
 baseline, beam control, beam + fusion (on the baseline and on the control),
 beam trie, beam trie + fusion (and the control and trie arms again with lists that
 carry sounds-like spellings, tinyrnnt.bias.soundslike); plus after-trigger fusion, the sound-alike false
@@ -22,6 +23,11 @@ from pathlib import Path
 
 from tinyrnnt.lab.evaluate import evaluate, save_results, write_atomic
 from tinyrnnt.lab.triebench import SOUNDS_LIKE  # sounds-like spellings per entry, chosen on valid
+
+# The trie arm's own token boost while fusing, tuned on valid with the weight (decode.model_boost_scale):
+# at full strength with fusion the arm over-boosts (valid, N = 100, beam 4, 2026-12-03: WER 0.080 at
+# weight 0.2 and scale 1, 0.058 at weight 1 and scale 0).
+MODEL_SCALES = (0.0, 0.25, 0.5, 1.0)
 
 HELDOUT = "style:reed"
 # Trigger phrases of the built-in scenario, per entity class (read off its templates: the
@@ -61,7 +67,7 @@ def run_fusion_bench(args) -> dict:
 
     # 1. the boost weight, tuned on valid for each model it is applied to
     weights = DEFAULT_WEIGHTS if not args.quick else (0.0, 1.0, 2.0, 4.0)
-    chosen, curves = {}, {}
+    chosen, scale_of, curves = {}, {}, {}
     tunings = [(key, where, 0) for key in models
                for where in (("anywhere", "after_trigger") if key == "baseline" else ("anywhere",))]
     tunings += [("trie_control", "anywhere", SOUNDS_LIKE), ("trie", "anywhere", SOUNDS_LIKE)]
@@ -70,11 +76,14 @@ def run_fusion_bench(args) -> dict:
         sweep = sweep_boost(models[key], corpus, weights, list_size=100, beam=beam, where=where,
                             triggers=TRIGGERS if where == "after_trigger" else None, limit=limit,
                             soundalike="test_soundalike" if key == "baseline" else None, label=f"{key} {where}",
-                            sounds_like=sl)
+                            sounds_like=sl, model_scales=(MODEL_SCALES if not args.quick else (0.0, 1.0))
+                            if key == "trie" else (1.0,))
         name = f"boost_curve_{key}_{where}" + (f"_sounds_like{sl}" if sl else "")
         write_curve(out_dir, name, sweep)
         chosen[(key, where, sl)], curves[name] = sweep["chosen"], sweep["rows"]
-        _log(f"{name}: chosen boost weight {sweep['chosen']:g} on valid; curve in {out_dir / name}.png")
+        scale_of[(key, where, sl)] = sweep["chosen_model_scale"]
+        _log(f"{name}: chosen boost weight {sweep['chosen']:g}, model boost x{sweep['chosen_model_scale']:g} "
+             f"on valid; curve in {out_dir / name}.png")
 
     # 2. the arms on the unseen-name test split
     arm_plan = {  # name: (model, boost where or None, sounds-like spellings per entry)
@@ -95,7 +104,8 @@ def run_fusion_bench(args) -> dict:
     for arm, (key, where, sl) in arm_plan.items():
         boost = None
         if where is not None:
-            boost = {"weight": chosen[(key, where, sl)], "where": where, "triggers": triggers}
+            boost = {"weight": chosen[(key, where, sl)], "where": where, "triggers": triggers,
+                     "model_scale": scale_of[(key, where, sl)]}
             if boost["weight"] == 0:
                 boost = None
         all_sizes = not args.quick and not sl and arm not in ("fusion_trigger", "control_fusion")
@@ -124,7 +134,8 @@ def run_fusion_bench(args) -> dict:
     # 3. real-time factor: beam 4, trie cue and boosting at N = 1000, one thread
     torch.set_num_threads(1)
     rtf_limit = min(limit or 300, 300)
-    boost = {"weight": chosen[("trie", "anywhere", 0)] or 1.0, "where": "anywhere", "triggers": triggers}
+    boost = {"weight": chosen[("trie", "anywhere", 0)] or 1.0, "where": "anywhere", "triggers": triggers,
+             "model_scale": scale_of[("trie", "anywhere", 0)]}
     _, rtf_summary = evaluate(models["trie"], test, list_size=1000, search="beam", beam=beam, boost=boost,
                               limit=rtf_limit)
     rtf = rtf_summary["rtf"]
@@ -215,6 +226,8 @@ def run_fusion_bench(args) -> dict:
         "false_trigger_soundalike": {arm: r4(s(arm, 100, "test_soundalike")["false_trigger_rate"]) for arm in arm_plan},
         "chosen_boost_weight": chosen[("baseline", "anywhere", 0)],
         "chosen_boost_weights": {f"{k}.{w}" + (f".sounds_like{sl}" if sl else ""): v for (k, w, sl), v in chosen.items()},
+        "chosen_model_boost_scales": {f"{k}.{w}" + (f".sounds_like{sl}" if sl else ""): v
+                                      for (k, w, sl), v in scale_of.items() if k == "trie"},
         **sounds_like_figures(),
         "boost_curve_baseline": base_curve,
         "curve_turns_uwer": turns(base_curve, "uwer"),

@@ -101,6 +101,9 @@ class TunePlan:
     list_size: int = 100
     weights: tuple[float, ...] = DEFAULT_WEIGHTS
     objective: str = "wer"  # lowest wer | bwer | uwer on the tuning split
+    # Weights of a biased arm's own token boost while fusing (decode.model_boost_scale), tuned as
+    # pairs with the boost weight for arms with bias.token_boost; (1,) = as trained.
+    model_scales: tuple[float, ...] = (1.0,)
 
     def __post_init__(self):
         from tinyrnnt.lab.fusion import OBJECTIVES
@@ -110,6 +113,9 @@ class TunePlan:
             raise C.ConfigError(f"evaluate.tune.objective must be one of {list(OBJECTIVES)}, got {self.objective!r}")
         if not self.weights:
             raise C.ConfigError("evaluate.tune.weights is empty; give at least one boost weight")
+        if not self.model_scales or any(not isinstance(s, (int, float)) or not 0 <= s < float("inf")
+                                        for s in self.model_scales):
+            raise C.ConfigError(f"evaluate.tune.model_scales must be numbers >= 0, got {list(self.model_scales)}")
 
 
 @dataclass

@@ -84,7 +84,7 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
     for variant, raw in plan.variants().items():
         settings, tuned = decode_settings(variant, raw)
         dcfg = C.apply_overrides(arm.cfg.decode, [f"{k}={json.dumps(v)}" for k, v in settings.items()])
-        weight, need_tuning = dcfg.boost_weight, tuned
+        weight, scale, need_tuning = dcfg.boost_weight, dcfg.model_boost_scale, tuned
         for split_name in plan.splits:
             for n in plan.list_sizes:
                 name = f"{split_name}.n{n}" if variant == "greedy" else f"{variant}.{split_name}.n{n}"
@@ -95,6 +95,7 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                     results[(key, variant, split_name, n)] = kept
                     if tuned:  # the weight tuned before, read back
                         weight, need_tuning = kept[1]["boost_weight"], False
+                        scale = kept[1].get("model_boost_scale", 1.0)
                     continue
                 if model is None:
                     model, _, _ = load_model(ckpt)
@@ -102,15 +103,16 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                     sweep = sweep_boost(model, arm.cfg.data.corpus, plan.tune.weights, plan.tune.split,
                                         plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
                                         dcfg.triggers, plan.tune.objective, plan.limit or None,
-                                        label=f"{key} {variant}", sounds_like=dcfg.sounds_like)
+                                        label=f"{key} {variant}", sounds_like=dcfg.sounds_like,
+                                        model_scales=plan.tune.model_scales if arm.cfg.bias.token_boost else (1.0,))
                     write_curve(folder, f"boost_curve.{variant}", sweep)
-                    weight, need_tuning = sweep["chosen"], False
+                    weight, scale, need_tuning = sweep["chosen"], sweep["chosen_model_scale"], False
                     if not quiet:
-                        print(f"{key} {variant}: boost weight {weight:g} chosen on {plan.tune.split}",
-                              file=sys.stderr)
+                        print(f"{key} {variant}: boost weight {weight:g} (model boost x{scale:g}) chosen on "
+                              f"{plan.tune.split}", file=sys.stderr)
                 boost = None
                 if weight != 0:
-                    boost = C.apply_overrides(dcfg, [f"boost_weight={weight}"]).boost()
+                    boost = C.apply_overrides(dcfg, [f"boost_weight={weight}", f"model_boost_scale={scale}"]).boost()
                 bar = False if quiet or progress is None else f"({count}/{total}) {key} {variant} {split_name} N={n}"
                 records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
                                             max_symbols=dcfg.max_symbols, limit=plan.limit or None,

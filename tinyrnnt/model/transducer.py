@@ -243,6 +243,9 @@ class Transducer(nn.Module):
         self.joiner = Joiner(self.encoder.out_dim, self.predictor.out_dim, cfg)
         self.bias = (build_biasing(bias, cfg.joiner_dim, cfg.predictor_embed, cfg.predictor_dim,
                                    self.encoder.out_dim) if bias is not None else None)
+        # Weight of the biasing input's token scores (the trie's token boost) in token_logits: 1 as
+        # trained; decoding with shallow fusion may lower it (decode.model_boost_scale).
+        self.token_boost_scale = 1.0
         self.ctc_head = nn.Linear(self.encoder.out_dim, VOCAB_SIZE) if cfg.ctc_weight > 0 else None
 
     def forward(self, feats: Tensor, feat_lens: Tensor, targets: Tensor, target_lens: Tensor | None = None,
@@ -281,11 +284,14 @@ class Transducer(nn.Module):
         readout = self.bias.hidden_readout() if token_feature is not None else None
         if readout is None:
             logits = out(hidden)
-            return logits if token_feature is None else logits + self.bias.token_scores(hidden, token_feature, logits)
+            if token_feature is None:
+                return logits
+            return logits + self.token_boost_scale * self.bias.token_scores(hidden, token_feature, logits)
         both = nn.functional.linear(hidden, torch.cat([out.weight, readout.weight]),
                                     torch.cat([out.bias, readout.bias]))  # (..., V + k): one pass over hidden
         logits = both[..., :VOCAB_SIZE]
-        return logits + self.bias.token_scores(hidden, token_feature, logits, readout=both[..., VOCAB_SIZE:])
+        scores = self.bias.token_scores(hidden, token_feature, logits, readout=both[..., VOCAB_SIZE:])
+        return logits + (scores if self.token_boost_scale == 1.0 else self.token_boost_scale * scores)
 
     def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
         """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""
