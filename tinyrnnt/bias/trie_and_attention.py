@@ -38,7 +38,7 @@ class TrieAndAttention(BiasingInput):
             from tinyrnnt.config import ConfigError
 
             raise ConfigError("bias.options.steer steers the trie's mixing boost: it needs bias.token_boost: true "
-                              f"and bias.boost_mode: mix (got {cfg.token_boost} and {cfg.boost_mode!r})")
+                              f"and bias.boost_mode: mix or mix_heard (got {cfg.token_boost} and {cfg.boost_mode!r})")
 
     def features(self, lists, targets, target_lens) -> dict[str, Tensor]:
         return {**self.trie.features(lists, targets, target_lens),

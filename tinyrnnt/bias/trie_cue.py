@@ -141,9 +141,7 @@ def weighted_mix_correction(logits: Tensor, weights: Tensor, gate: Tensor) -> Te
     g = gate[..., None]  # (..., 1)
     lse = torch.logsumexp(z, dim=-1, keepdim=True)
     log_t = torch.log(w.clamp(min=1e-30)) - torch.log(total.clamp(min=1e-30))  # (..., V-1)
-    s = g + lse + log_t - z
-    corr = nn.functional.logsigmoid(-g) * live + torch.where(w > 0, nn.functional.softplus(s), torch.zeros_like(s))
-    return nn.functional.pad(corr, (1, 0))  # (..., V)
+    return _mixed(g, g + lse + log_t - z, w > 0, live)
 
 
 def heard_mix_correction(logits: Tensor, cue: Tensor, gate: Tensor, sharpness: Tensor) -> Tensor:
@@ -166,8 +164,13 @@ def heard_mix_correction(logits: Tensor, cue: Tensor, gate: Tensor, sharpness: T
     lse = torch.logsumexp(z, dim=-1, keepdim=True)  # (..., 1)
     sharp = sharpness * z  # (..., V-1)
     lse_allowed = torch.logsumexp(sharp.masked_fill(~allowed, -1e30), dim=-1, keepdim=True)  # (..., 1)
-    s = g + lse + sharp - lse_allowed - z  # log(w / (1 - w)) + log t_v - log q_v
-    corr = nn.functional.logsigmoid(-g) * live + torch.where(allowed, nn.functional.softplus(s), torch.zeros_like(s))
+    return _mixed(g, g + lse + sharp - lse_allowed - z, allowed, live)
+
+
+def _mixed(g: Tensor, s: Tensor, target: Tensor, live: Tensor) -> Tensor:
+    """The correction of the plain-autograd mixtures: log(1 - w) where the cue is live, plus
+    softplus(s) on the target's tokens (s = log(w / (1 - w)) + log t_v - log q_v), blank's 0 put back."""
+    corr = nn.functional.logsigmoid(-g) * live + torch.where(target, nn.functional.softplus(s), torch.zeros_like(s))
     return nn.functional.pad(corr, (1, 0))  # (..., V)
 
 

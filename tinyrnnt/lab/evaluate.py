@@ -146,63 +146,59 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
     label = progress if isinstance(progress, str) else f"{split.split} N={list_size}"
     started = time.perf_counter()
     hop = split.card["features"]["hop_ms"] / 1000.0
-    # the model's own token boost against shallow fusion (decode.model_boost_scale), for this call only
-    model.token_boost_scale = float(boost.get("model_scale", 1.0)) if boost is not None else 1.0
-    try:
-        with torch.no_grad():
-            for batch in loader(split, batch_size, transform=attach):
-                if limit is not None and len(records) >= limit:
-                    break
-                t0 = time.perf_counter()
-                nbest = None
-                lists, written = batch["lists"], [{} for _ in batch["lists"]]
-                if sounds_like:
-                    lists, written = map(list, zip(*(expand_list(lst, phones_of, vocabulary, key, sounds_like, spellings)
-                                                     for lst in batch["lists"])))
-                if search == "beam":
-                    b = None
-                    if boost is not None:
-                        classes = ([list(fixed_classes) for _ in batch["lists"]] if fixed_list is not None else
-                                   [[labels.get(w, (None,))[0] for w in lst] for lst in batch["lists"]])
-                        for k, (c, lst) in enumerate(zip(classes, batch["lists"])):  # a spelling: its entry's class
-                            class_of = dict(zip(lst, c))
-                            classes[k] = c + [class_of[written[k][w]] for w in lists[k][len(lst):]]
-                        b = dict(boost, classes=classes)
-                    nbest = beam_search(model, batch["feats"], batch["feat_lens"], lists, beam=beam,
-                                        max_symbols=max_symbols, boost=b)
-                    hyps = [n[0][0] if n else [] for n in nbest]
-                else:
-                    # a biased model always decodes with its biaser (beam search builds its own per row);
-                    # at N = 0 the lists are empty
-                    biaser = model.bias.decoder(lists) if model.bias is not None else None
-                    hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
-                                         biaser=biaser)
-                decode_s += time.perf_counter() - t0
-                if progress:
-                    print("\r" + progress_bar(label, len(records) + len(hyps), total, time.perf_counter() - started),
-                          end="", file=sys.stderr, flush=True)
-                audio_s += float(batch["feat_lens"].sum()) * hop
-                for k, h in enumerate(hyps):
-                    heard = decode(h)
-                    hyp = put_back(heard, written[k]) if sounds_like else heard
-                    spans = batch["spans"][k]
-                    counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], labels)
-                    records.append({"id": batch["ids"][k], "ref": batch["texts"][k], "hyp": hyp,
-                                    "list_size": list_size, "spans": spans, "counts": counts})
-                    if hyp != heard:
-                        records[-1]["decoded_as"] = heard  # before sounds-like spellings were written as entries
-                    if nbest is not None:
-                        records[-1]["nbest"] = [[put_back(decode(toks), written[k]), round(score, 4)]
-                                                for toks, score in nbest[k]]
-    finally:
-        model.token_boost_scale = 1.0
+    scale = float(boost.get("model_scale", 1.0)) if boost is not None else 1.0  # decode.model_boost_scale
+    with torch.no_grad(), model.scaled_token_boost(scale):
+        for batch in loader(split, batch_size, transform=attach):
+            if limit is not None and len(records) >= limit:
+                break
+            t0 = time.perf_counter()
+            nbest = None
+            lists, written = batch["lists"], [{} for _ in batch["lists"]]
+            if sounds_like:
+                lists, written = map(list, zip(*(expand_list(lst, phones_of, vocabulary, key, sounds_like, spellings)
+                                                 for lst in batch["lists"])))
+            if search == "beam":
+                b = None
+                if boost is not None:
+                    classes = ([list(fixed_classes) for _ in batch["lists"]] if fixed_list is not None else
+                               [[labels.get(w, (None,))[0] for w in lst] for lst in batch["lists"]])
+                    for k, (c, lst) in enumerate(zip(classes, batch["lists"])):  # a spelling: its entry's class
+                        class_of = dict(zip(lst, c))
+                        classes[k] = c + [class_of[written[k][w]] for w in lists[k][len(lst):]]
+                    b = dict(boost, classes=classes)
+                nbest = beam_search(model, batch["feats"], batch["feat_lens"], lists, beam=beam,
+                                    max_symbols=max_symbols, boost=b)
+                hyps = [n[0][0] if n else [] for n in nbest]
+            else:
+                # a biased model always decodes with its biaser (beam search builds its own per row);
+                # at N = 0 the lists are empty
+                biaser = model.bias.decoder(lists) if model.bias is not None else None
+                hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
+                                     biaser=biaser)
+            decode_s += time.perf_counter() - t0
+            if progress:
+                print("\r" + progress_bar(label, len(records) + len(hyps), total, time.perf_counter() - started),
+                      end="", file=sys.stderr, flush=True)
+            audio_s += float(batch["feat_lens"].sum()) * hop
+            for k, h in enumerate(hyps):
+                heard = decode(h)
+                hyp = put_back(heard, written[k]) if sounds_like else heard
+                spans = batch["spans"][k]
+                counts = score_utterance(batch["texts"][k], hyp, batch["lists"][k], labels)
+                records.append({"id": batch["ids"][k], "ref": batch["texts"][k], "hyp": hyp,
+                                "list_size": list_size, "spans": spans, "counts": counts})
+                if hyp != heard:
+                    records[-1]["decoded_as"] = heard  # before sounds-like spellings were written as entries
+                if nbest is not None:
+                    records[-1]["nbest"] = [[put_back(decode(toks), written[k]), round(score, 4)]
+                                            for toks, score in nbest[k]]
     if progress:
         print(file=sys.stderr)
     summary = summarize(r["counts"] for r in records)
     summary.update({"search": search, "beam": beam if search == "beam" else None,
                     "boost_weight": boost["weight"] if boost else 0.0,
                     "boost_where": boost["where"] if boost else None,
-                    "model_boost_scale": float(boost.get("model_scale", 1.0)) if boost else 1.0})
+                    "model_boost_scale": scale})
     summary.update({"list_size": list_size, "confusable": confusable, "sounds_like": sounds_like, "decode_seconds": round(decode_s, 3),
                     "audio_seconds": round(audio_s, 1), "rtf": decode_s / max(audio_s, 1e-9)})
     summary.update(exposure_recall(records))

@@ -59,7 +59,8 @@ def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid
         _, s = evaluate(model, valid, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
                         boost=boost, limit=limit, sounds_like=sounds_like)
         row = {"weight": w, "model_boost_scale": scale if w != 0 else 1.0, "wer": s["wer"], "uwer": s["uwer"],
-               "bwer": s["bwer"], "recall": s["recall"], "precision": s["precision"], "false_trigger_rate": s["false_trigger_rate"]}
+               "bwer": s["bwer"], "recall": s["recall"], "precision": s["precision"],
+               "false_trigger_rate": s["false_trigger_rate"]}
         if alike is not None:
             _, a = evaluate(model, alike, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
                             boost=boost, limit=limit, sounds_like=sounds_like)

@@ -197,6 +197,9 @@ def run_grid(recipe, overrides=(), quiet: bool = False) -> dict:
     if plan.start_from and plan.start_from not in recipe.runs:
         raise C.ConfigError(f"grid.start_from: {plan.start_from!r} is not a run of the recipe; "
                             f"runs: {list(recipe.runs)}")
+    if tuple(recipe.evaluate.tune.model_scales) != (1.0,):  # before any training, not at the first tuning
+        raise C.ConfigError("evaluate.tune.model_scales: grids tune the boost weight only; leave it at [1] "
+                            "and put decode.model_boost_scale on a grid axis instead")
     cells, models = expand(recipe, plan, overrides)
     folder = Path(recipe.out_dir) / recipe.name
     lines_path = folder / "grid.jsonl"

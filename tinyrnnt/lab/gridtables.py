@@ -18,11 +18,6 @@ def tuned_weight(model, cfg, dcfg, evaluate_plan, decoding: str, say) -> float:
     from tinyrnnt.lab.fusion import sweep_boost, write_curve
 
     tune = evaluate_plan.tune
-    if tuple(tune.model_scales) != (1.0,):
-        from tinyrnnt.config import ConfigError
-
-        raise ConfigError("evaluate.tune.model_scales: grids tune the boost weight only; leave it at [1] "
-                          "and put decode.model_boost_scale on a grid axis instead")
     folder = Path(cfg.run_dir) / "results"
     saved = folder / f"boost_curve.{decoding}.json"
     if saved.is_file():

@@ -13,6 +13,8 @@ Plain PyTorch; Lightning lives in `tinyrnnt.model.lightning` only.
 
 from __future__ import annotations
 
+from contextlib import contextmanager
+
 from dataclasses import dataclass
 
 import torch
@@ -286,12 +288,23 @@ class Transducer(nn.Module):
             logits = out(hidden)
             if token_feature is None:
                 return logits
-            return logits + self.token_boost_scale * self.bias.token_scores(hidden, token_feature, logits)
-        both = nn.functional.linear(hidden, torch.cat([out.weight, readout.weight]),
-                                    torch.cat([out.bias, readout.bias]))  # (..., V + k): one pass over hidden
-        logits = both[..., :VOCAB_SIZE]
-        scores = self.bias.token_scores(hidden, token_feature, logits, readout=both[..., VOCAB_SIZE:])
+            scores = self.bias.token_scores(hidden, token_feature, logits)
+        else:
+            both = nn.functional.linear(hidden, torch.cat([out.weight, readout.weight]),
+                                        torch.cat([out.bias, readout.bias]))  # (..., V + k): one pass over hidden
+            logits = both[..., :VOCAB_SIZE]
+            scores = self.bias.token_scores(hidden, token_feature, logits, readout=both[..., VOCAB_SIZE:])
         return logits + (scores if self.token_boost_scale == 1.0 else self.token_boost_scale * scores)
+
+    @contextmanager
+    def scaled_token_boost(self, scale: float):
+        """The biasing input's token scores weighted by `scale` inside the block (decoding with
+        decode.model_boost_scale), as trained again after it."""
+        self.token_boost_scale = float(scale)
+        try:
+            yield self
+        finally:
+            self.token_boost_scale = 1.0
 
     def losses(self, feats, feat_lens, targets, target_lens, lists=None, implementation: str = "ours") -> dict:
         """Training objective: transducer loss (+ weighted auxiliary CTC); plain PyTorch, no Trainer needed."""
