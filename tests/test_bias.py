@@ -203,6 +203,10 @@ def test_heard_mixing_boost_is_the_mixture_with_the_models_own_target():
         check_mixture(logits, heard_mix_correction(logits, allowed, gate, torch.tensor(sharpness)), weights, gate)
     assert torch.allclose(heard_mix_correction(logits, allowed, gate, torch.tensor(0.0)),
                           mix_correction(logits, allowed, gate), atol=1e-5)
+    # a cue of weights (keyword spotting while decoding, tinyrnnt.bias.spotting): t ~ weight q ** s
+    spotted = allowed * torch.rand(4, VOCAB_SIZE)
+    q_power = torch.nn.functional.pad(torch.softmax(logits[:, 1:], -1) ** 0.5, (1, 0))
+    check_mixture(logits, heard_mix_correction(logits, spotted, gate, torch.tensor(0.5)), q_power * spotted, gate)
 
 
 def test_mixing_boost_gradient_passes_gradcheck():

@@ -89,7 +89,7 @@ def _decode(args) -> int:
                                 max_symbols=cfg.decode.max_symbols, fixed_list=own_list,
                                 fixed_classes=own_classes, search=cfg.decode.search, beam=cfg.decode.beam,
                                 boost=cfg.decode.boost(), sounds_like=cfg.decode.sounds_like,
-                                pronunciations=own_phones)
+                                pronunciations=own_phones, spotting=cfg.decode.spotting)
     name = (f"{args.split}.{Path(args.list_file).stem}" if args.list_file
             else f"{args.split}.n{args.list_size}" + (".confusable" if args.confusable else ""))
     save_results(out, name, records, summary)

@@ -32,6 +32,10 @@ class DecodeConfig:
     # is also listed in up to this many spellings the recognizer itself writes for its sound, and a
     # word decoded in one of them is written as the entry; 0 = lists as given.
     sounds_like: int = 0
+    # Keyword spotting with the model's CTC head steers the trie's mixing boost towards the listed
+    # entries that sound like the audio (tinyrnnt.bias.spotting); greedy and beam. Arms whose model
+    # has no heard mixing boost (bias.boost_mode: mix_heard) decode without it.
+    spotting: bool = False
 
     def __post_init__(self):
         from tinyrnnt.bias.fusion import BOOST_WHERE, check_weight, parse_triggers

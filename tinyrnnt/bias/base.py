@@ -257,3 +257,8 @@ class Biaser:
         """(rows, T', Dj) added to the joiner's encoder side of each row, from the encoder output
         (rows, T', De) of each row's utterance; default None (nothing)."""
         return None
+
+    def set_frame(self, t: int) -> bool:
+        """The decoders call this at the start of every encoder frame t; True when `features` now
+        depend on t (the decoders then read them again for every live row); default False."""
+        return False

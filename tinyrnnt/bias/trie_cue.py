@@ -151,7 +151,8 @@ def heard_mix_correction(logits: Tensor, cue: Tensor, gate: Tensor, sharpness: T
     preference among the allowed tokens, so where the tree allows several letters the sound picks
     one, and where it allows one the target is that letter whatever the model thinks of it (the
     pointer over the tree's children of Sun et al. 2021, here with the model's own scores as the
-    pointer). Plain autograd, so the sharpness is learned.
+    pointer). Plain autograd, so the sharpness is learned. A cue of weights instead of 0/1 (keyword
+    spotting while decoding, tinyrnnt.bias.spotting) multiplies the target: t_v ~ cue_v q_v ** s.
 
     >>> logits, gate = torch.tensor([0.0, 2.0, 0.0, -9.0]), torch.tensor(0.0)
     >>> cue = torch.tensor([0.0, 0.0, 1.0, 1.0])
@@ -163,6 +164,8 @@ def heard_mix_correction(logits: Tensor, cue: Tensor, gate: Tensor, sharpness: T
     g = gate[..., None]  # (..., 1)
     lse = torch.logsumexp(z, dim=-1, keepdim=True)  # (..., 1)
     sharp = sharpness * z  # (..., V-1)
+    if not bool(((cue == 0) | (cue == 1)).all()):  # weights, not 0/1 (decode.spotting): t_v ~ cue_v q_v ** s
+        sharp = sharp + torch.log(cue[..., 1:].clamp_min(1e-30))
     lse_allowed = torch.logsumexp(sharp.masked_fill(~allowed, -1e30), dim=-1, keepdim=True)  # (..., 1)
     return _mixed(g, g + lse + sharp - lse_allowed - z, allowed, live)
 

@@ -151,20 +151,23 @@ class _Search:
 
 @torch.no_grad()
 def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] | None = None, beam: int = 4,
-                max_symbols: int = 4, boost: dict | None = None) -> list[list[tuple[list[int], float]]]:
+                max_symbols: int = 4, boost: dict | None = None,
+                spotting: bool = False) -> list[list[tuple[list[int], float]]]:
     """N-best lists per utterance: [(token ids, score), ...] best first, at most `beam` each.
 
     lists: one biasing list per utterance (the model's biasing input and the booster read it).
     boost: shallow fusion, {"weight": w, "where": "anywhere" | "after_trigger",
     "classes": per utterance the class of each list entry, "triggers": class -> phrases};
     None = no booster at all (weight 0 gives the same scores, exactly).
+    spotting: keyword spotting steers the trie's mixing boost (tinyrnnt.bias.spotting).
     """
     from tinyrnnt.bias.fusion import Booster
 
     if beam < 1 or max_symbols < 1:
         raise ValueError(f"beam and max_symbols must be >= 1, got {beam} and {max_symbols}")
     K = beam
-    enc, enc_lens = model.encoder(feats, feat_lens)  # (B, T', De)
+    enc, enc_lens, *first = (model.encoder(feats, feat_lens, keep_first=True) if spotting
+                             else model.encoder(feats, feat_lens))  # (B, T', De)
     B = enc.shape[0]
     lists = [[] for _ in range(B)] if lists is None else lists
     order = torch.argsort(enc_lens, descending=True, stable=True)
@@ -172,6 +175,12 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
     lens = enc_lens.index_select(0, order).tolist()
     row_lists = [lists[int(b)] for b in order for _ in range(K)]  # rows of an utterance share its list
     biaser = model.bias.decoder(row_lists) if model.bias is not None else None
+    if spotting:
+        from tinyrnnt.bias.spotting import ctc_log_probs, spotting_decoder
+
+        biaser = spotting_decoder(model, row_lists)
+        biaser.hear(ctc_log_probs(model, first[0].index_select(0, order)), first[1].index_select(0, order),
+                    torch.arange(B).repeat_interleave(K), enc.shape[1])
     booster = None
     if boost is not None:
         classes = boost.get("classes")
@@ -207,6 +216,8 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
                 finished[u] = search.take(rows, torch.arange(u * K, (u + 1) * K))
             rows = search.take(rows, torch.arange(now * K))
             live = now
+        if biaser is not None and biaser.set_frame(t):  # features that read the frame: read them again
+            rows.tokfeat = biaser.after_predictor(biaser.features(rows.bstate), rows.pred).get("logits")
         enc_rows = enc_p[:live, t].repeat_interleave(K, dim=0)  # (live*K, Dj)
         if frames is not None:  # (R, T', Dj): a biasing feature per frame and row
             enc_rows = enc_rows + frames[: live * K, t]

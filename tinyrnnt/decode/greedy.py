@@ -35,8 +35,14 @@ def _select(mask: Tensor, new, old):
 @torch.no_grad()
 def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4, biaser=None) -> list[list[int]]:
     """Token ids per utterance (blanks removed)."""
-    enc, enc_lens = model.encoder(feats, feat_lens)  # (B, T', De)
+    listening = getattr(biaser, "listens", False)  # keyword spotting reads the CTC head (tinyrnnt.bias.spotting)
+    enc, enc_lens, *first = (model.encoder(feats, feat_lens, keep_first=True) if listening
+                             else model.encoder(feats, feat_lens))  # (B, T', De)
     B, T, _ = enc.shape
+    if listening:
+        from tinyrnnt.bias.spotting import ctc_log_probs
+
+        biaser.hear(ctc_log_probs(model, first[0]), first[1], torch.arange(B), T)
     enc_p = model.joiner.enc_proj(enc)  # (B, T', Dj)
     frames = biaser.frames(enc) if biaser is not None else None  # (B, T', Dj) or None
     if frames is not None:
@@ -54,6 +60,9 @@ def greedy_decode(model, feats: Tensor, feat_lens: Tensor, max_symbols: int = 4,
         still = t < enc_lens  # (B,)
         if not still.any():
             break
+        if biaser is not None and biaser.set_frame(t):  # features that read the frame: read them again
+            extra = biaser.after_predictor(biaser.features(bstate), pred)
+            label = model.joiner.label_side(pred, extra.get("joiner"))
         for _ in range(max_symbols):
             hidden = torch.tanh(enc_p[:, t] + label)  # (B, Dj)
             logits = model.token_logits(hidden, extra.get("logits"))  # (B, V)

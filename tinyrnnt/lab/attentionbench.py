@@ -90,11 +90,13 @@ def _identity(ckpt: str) -> str:
     return f"{p}@{p.stat().st_mtime_ns}"
 
 
-def accuracy(args, checkpoints: dict[str, str]) -> dict:
-    """Greedy decoding of test_unseen at N = 100 and test with no list, every arm; results saved in
-    RUN_DIR/results/ARM/ (read back when present and the checkpoint is the same)."""
+def accuracy(args, checkpoints: dict[str, str], spotting: dict[str, bool]) -> dict:
+    """Greedy decoding of test_unseen at N = 100 and test with no list, every arm (with keyword
+    spotting where its recipe says decode.spotting and its model can spot); results saved in
+    RUN_DIR/results/ARM/ (read back when present and the checkpoint and spotting are the same)."""
     import torch
 
+    from tinyrnnt.bias.spotting import can_spot
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, load_results, save_results
     from tinyrnnt.lab.train import load_model, read_history
@@ -103,14 +105,14 @@ def accuracy(args, checkpoints: dict[str, str]) -> dict:
     torch.set_num_threads(2)
     out, counts = {}, {}
     for key, ckpt in checkpoints.items():
-        model = None
+        model = load_model(ckpt)[0]
+        spot = spotting.get(key, False) and can_spot(model)  # the arm's decode.spotting in the recipe
         for split_name, n in (("test_unseen", 100), ("test", 0)):
             folder, name = Path(args.run_dir) / "results" / key, f"{split_name}.n{n}"
             saved = load_results(folder, name)
-            if saved is None or saved[1].get("checkpoint") != _identity(ckpt):
-                model = model or load_model(ckpt)[0]
+            if saved is None or saved[1].get("checkpoint") != _identity(ckpt) or saved[1].get("spotting", False) != spot:
                 records, summary = evaluate(model, CorpusSplit(args.corpus, split_name), list_size=n,
-                                            limit=args.limit or None)
+                                            limit=args.limit or None, spotting=spot)
                 summary["checkpoint"] = _identity(ckpt)
                 save_results(folder, name, records, summary)
                 saved = records, summary
@@ -137,6 +139,7 @@ def accuracy(args, checkpoints: dict[str, str]) -> dict:
     res["bwer_by_style_n100"] = {key: {k[len("bwer:style:"):]: r4(v) for k, v in out[(key, "test_unseen")].items()
                                        if k.startswith("bwer:style:")} for key in checkpoints}
     res["train_steps"] = {key: read_history(ckpt)["steps"] for key, ckpt in checkpoints.items()}
+    res["spotting"] = {key: bool(out[(key, "test_unseen")].get("spotting")) for key in checkpoints}
     return res
 
 
@@ -151,7 +154,7 @@ def run_attention_bench(args) -> dict:
     checkpoints = trie_models(args, arms)
     checkpoints.update(new_arms(args, arms, checkpoints["baseline"]))
     t_acc = time.perf_counter()
-    result = accuracy(args, checkpoints)
+    result = accuracy(args, checkpoints, {k: arm.cfg.decode.spotting for k, arm in arms.items()})
     acc_s = time.perf_counter() - t_acc
     sizes = tuple(int(n) for n in args.sizes.split(","))
     t_cost = time.perf_counter()

@@ -103,7 +103,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
              fixed_list: list[str] | None = None, search: str = "greedy", beam: int = 4,
              boost: dict | None = None, fixed_classes: list[str | None] | None = None,
              progress: bool | str = False, sounds_like: int = 0,
-             pronunciations: dict[str, str] | None = None) -> tuple[list[dict], dict]:
+             pronunciations: dict[str, str] | None = None, spotting: bool = False) -> tuple[list[dict], dict]:
     """Per-utterance records and the corpus summary (score.summarize keys, plus timing).
 
     fixed_list: one biasing list for every utterance (a user's own) instead of the corpus lists;
@@ -114,8 +114,10 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
     sounds_like: add up to this many sounds-like spellings of each entry whose pronunciation the
     corpus inventory knows (tinyrnnt.bias.soundslike, the key learned from the corpus's training
     words), and write words decoded in one of them as the entry before scoring; 0: lists as they are. pronunciations: phones of a user's
-    entries (read_list_pronunciations), over the inventory's.
+    entries (read_list_pronunciations), over the inventory's. spotting: keyword spotting with the
+    model's CTC head steers the trie's mixing boost (tinyrnnt.bias.spotting; greedy and beam).
     """
+    from tinyrnnt.bias.spotting import spotting_decoder
     from tinyrnnt.decode.beam import beam_search
 
     model.eval()
@@ -167,12 +169,14 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                         classes[k] = c + [class_of[written[k][w]] for w in lists[k][len(lst):]]
                     b = dict(boost, classes=classes)
                 nbest = beam_search(model, batch["feats"], batch["feat_lens"], lists, beam=beam,
-                                    max_symbols=max_symbols, boost=b)
+                                    max_symbols=max_symbols, boost=b, spotting=spotting)
                 hyps = [n[0][0] if n else [] for n in nbest]
             else:
                 # a biased model always decodes with its biaser (beam search builds its own per row);
                 # at N = 0 the lists are empty
                 biaser = model.bias.decoder(lists) if model.bias is not None else None
+                if spotting:
+                    biaser = spotting_decoder(model, lists)
                 hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
                                      biaser=biaser)
             decode_s += time.perf_counter() - t0
@@ -195,7 +199,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
     if progress:
         print(file=sys.stderr)
     summary = summarize(r["counts"] for r in records)
-    summary.update({"search": search, "beam": beam if search == "beam" else None,
+    summary.update({"search": search, "beam": beam if search == "beam" else None, "spotting": spotting,
                     "boost_weight": boost["weight"] if boost else 0.0,
                     "boost_where": boost["where"] if boost else None,
                     "model_boost_scale": scale})

@@ -31,7 +31,7 @@ DEFAULT_WEIGHTS = (0.0, 0.1, 0.2, 0.3, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
 def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid", list_size: int = 100,
                 beam: int = 4, max_symbols: int = 4, where: str = "anywhere", triggers: dict | None = None,
                 objective: str = "wer", limit: int | None = None, soundalike: str | None = "test_soundalike",
-                label: str = "", sounds_like: int = 0, model_scales=(1.0,)) -> dict:
+                label: str = "", sounds_like: int = 0, model_scales=(1.0,), spotting: bool = False) -> dict:
     """{"rows": one per (model scale, weight), "chosen": weight, "chosen_model_scale", "objective": ...};
     prints progress on stderr. Ties go to the smaller weight, then to the larger model scale."""
     from tinyrnnt.bias.fusion import check_weight, parse_triggers
@@ -57,13 +57,13 @@ def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid
               file=sys.stderr, flush=True)
         boost = {"weight": w, "where": where, "triggers": parsed, "model_scale": scale} if w != 0 else None
         _, s = evaluate(model, valid, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
-                        boost=boost, limit=limit, sounds_like=sounds_like)
+                        boost=boost, limit=limit, sounds_like=sounds_like, spotting=spotting)
         row = {"weight": w, "model_boost_scale": scale if w != 0 else 1.0, "wer": s["wer"], "uwer": s["uwer"],
                "bwer": s["bwer"], "recall": s["recall"], "precision": s["precision"],
                "false_trigger_rate": s["false_trigger_rate"]}
         if alike is not None:
             _, a = evaluate(model, alike, list_size=list_size, search="beam", beam=beam, max_symbols=max_symbols,
-                            boost=boost, limit=limit, sounds_like=sounds_like)
+                            boost=boost, limit=limit, sounds_like=sounds_like, spotting=spotting)
             row["soundalike_false_trigger_rate"] = a["false_trigger_rate"]
             row["soundalike_wer"] = a["wer"]
         rows.append(row)
@@ -72,7 +72,7 @@ def sweep_boost(model, corpus: str, weights=DEFAULT_WEIGHTS, split: str = "valid
                                     -r["model_boost_scale"]))
     return {"rows": rows, "chosen": best["weight"], "chosen_model_scale": best["model_boost_scale"],
             "objective": objective, "split": split,
-            "list_size": list_size, "where": where, "sounds_like": sounds_like}
+            "list_size": list_size, "where": where, "sounds_like": sounds_like, "spotting": spotting}
 
 
 def write_curve(folder: str | Path, name: str, sweep: dict) -> list[Path]:

@@ -168,6 +168,7 @@ def run_cell(model, cfg, dcfg, cell: Cell, split: str, plan: GridPlan, limit: in
              progress: bool | str = False) -> dict:
     """Decode and score one cell on one split, save its hypotheses in its model's results folder,
     and return its line for grid.jsonl (facts: model, checkpoint, history, start, config)."""
+    from tinyrnnt.bias.spotting import can_spot
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, save_results
     from tinyrnnt.lab.tables import TABLE_KEYS
@@ -175,7 +176,8 @@ def run_cell(model, cfg, dcfg, cell: Cell, split: str, plan: GridPlan, limit: in
     records, summary = evaluate(model, CorpusSplit(cfg.data.corpus, split), list_size=cell.list_size,
                                 max_symbols=dcfg.max_symbols, limit=limit or None,
                                 search=dcfg.search, beam=dcfg.beam, boost=dcfg.boost(),
-                                progress=progress, sounds_like=dcfg.sounds_like)
+                                progress=progress, sounds_like=dcfg.sounds_like,
+                                spotting=dcfg.spotting and can_spot(model))
     name = f"grid.{cell.decoding(plan)}.{split}.n{cell.list_size}"
     save_results(Path(cfg.run_dir) / "results", name, records, summary)
     history = facts["history"]

@@ -67,7 +67,7 @@ class EvalPlan:
         return self.decoding or {"greedy": {}}
 
 
-DECODING_KEYS = ("search", "beam", "boost_weight", "boost_where", "triggers", "max_symbols")
+DECODING_KEYS = ("search", "beam", "boost_weight", "boost_where", "triggers", "max_symbols", "spotting")
 
 
 def decode_settings(name: str, variant) -> tuple[dict, bool]:
@@ -230,7 +230,7 @@ def expand_arms(recipe: Recipe, overrides=()) -> dict[str, Arm]:
             if cfg.train.steps == 0:
                 raise C.ConfigError(f"run {run!r}: a control arm needs a step budget; set train.steps "
                                     "(or `controls: false` in the recipe for a quick look)")
-            twin = C.apply_overrides(cfg, ["bias={}"])
+            twin = C.apply_overrides(cfg, ["bias={}", "decode.spotting=false"])  # nothing to spot without a list input
             same = [r for r, (c, _) in plans.items() if _same_training(c, twin)]
             if same:  # an earlier run or control already trains exactly this
                 controls[run] = same[0]

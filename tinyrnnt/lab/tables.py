@@ -72,6 +72,7 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
     no bars, a line per evaluation."""
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.evaluate import evaluate, load_results, save_results
+    from tinyrnnt.bias.spotting import can_spot
     from tinyrnnt.lab.fusion import sweep_boost, write_curve
     from tinyrnnt.lab.recipes import decode_settings
     from tinyrnnt.lab.train import load_model, read_history
@@ -104,7 +105,8 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                                         plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
                                         dcfg.triggers, plan.tune.objective, plan.limit or None,
                                         label=f"{key} {variant}", sounds_like=dcfg.sounds_like,
-                                        model_scales=plan.tune.model_scales if arm.cfg.bias.token_boost else (1.0,))
+                                        model_scales=plan.tune.model_scales if arm.cfg.bias.token_boost else (1.0,),
+                                        spotting=dcfg.spotting and can_spot(model))
                     write_curve(folder, f"boost_curve.{variant}", sweep)
                     weight, scale, need_tuning = sweep["chosen"], sweep["chosen_model_scale"], False
                     if not quiet:
@@ -117,7 +119,7 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                 records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
                                             max_symbols=dcfg.max_symbols, limit=plan.limit or None,
                                             search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar,
-                                            sounds_like=dcfg.sounds_like)
+                                            sounds_like=dcfg.sounds_like, spotting=dcfg.spotting and can_spot(model))
                 summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
                                boost_weight=weight)
                 save_results(folder, name, records, summary)

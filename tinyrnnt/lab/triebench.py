@@ -76,6 +76,7 @@ def train_recipe(args):
 def run_trie_bench(args) -> dict:
     import torch
 
+    from tinyrnnt.bias.spotting import can_spot
     from tinyrnnt.data import CorpusSplit
     from tinyrnnt.lab.train import load_model, read_history
     from tinyrnnt.score import compare_systems
@@ -99,6 +100,9 @@ def run_trie_bench(args) -> dict:
     # and on the in-domain test with no list.
     seed_plan = [("test_unseen", 100, False, "greedy", 0), ("test_unseen", 100, False, "greedy", SOUNDS_LIKE),
                  ("test", 0, False, "greedy", 0)]
+    # The trie arm decodes as its recipe says (decode.spotting: keyword spotting steers its mixing
+    # boost); where it spots, the headline lists are also decoded without spotting: the cue alone.
+    cue_only_plan = [("test_unseen", 100, False, "greedy", 0), ("test_unseen", 100, False, "greedy", SOUNDS_LIKE)]
     first = f"/seed{recipe.seeds[0]}" if len(recipe.seeds) > 1 else ""
     results: dict[tuple, tuple] = {}
     for key in arms:
@@ -106,16 +110,22 @@ def run_trie_bench(args) -> dict:
         if further_seed and key.startswith("baseline"):
             continue
         model = load_model(trained["arms"][key]["last_checkpoint"])[0]
-        for split_name, n, confusable, search, sounds_like in (seed_plan if further_seed else plan):
+        spots = arms[key].cfg.decode.spotting and can_spot(model)
+        runs = [(*p, spots) for p in (seed_plan if further_seed else plan)]
+        if spots and not further_seed:
+            runs += [(*p, False) for p in cue_only_plan]
+        for split_name, n, confusable, search, sounds_like, spot in runs:
             if sounds_like and key.startswith("baseline"):
                 continue  # the sounds-like figures compare the trie arm with its control only
             split = CorpusSplit(args.corpus, split_name)
             records, summary = evaluate(model, split, list_size=n, confusable=confusable, search=search, beam=BEAM,
-                                        sounds_like=sounds_like)
+                                        sounds_like=sounds_like, spotting=spot)
             name = (f"{split_name}.n{n}" + (".confusable" if confusable else "")
-                    + (f".sounds_like{sounds_like}" if sounds_like else "") + (f".beam{BEAM}" if search == "beam" else ""))
+                    + (f".sounds_like{sounds_like}" if sounds_like else "") + (f".beam{BEAM}" if search == "beam" else "")
+                    + (".spotting" if spot else ""))
             save_results(Path(arms[key].cfg.run_dir) / "results", name, records, summary)
-            results[(key, split_name, n, confusable, search, sounds_like)] = (records, summary)
+            cue_only = spots and not spot  # the trie arm's extra decoding without spotting
+            results[(key, split_name, n, confusable, search, sounds_like, cue_only)] = (records, summary)
             _log(f"{key:20s} {name:28s} WER {summary['wer']:.3f} U-WER {summary['uwer'] or 0:.3f} "
                  f"B-WER {summary['bwer'] if summary['bwer'] is not None else float('nan'):.3f} "
                  f"false-trigger {summary['false_trigger_rate'] or 0:.3f}")
@@ -127,11 +137,34 @@ def run_trie_bench(args) -> dict:
     check_s = time.perf_counter() - t_check
     _log(f"repeated short run gives identical weights and metrics: {same} ({check_s:.0f} s)")
 
-    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first, search="greedy", sounds_like=0):
-        return results[(run + seed_key, split, n, confusable, search, sounds_like)][1]
+    def s(run, split="test_unseen", n=100, confusable=False, seed_key=first, search="greedy", sounds_like=0,
+          cue_only=False):
+        return results[(run + seed_key, split, n, confusable, search, sounds_like, cue_only)][1]
 
-    def counts(run, split="test_unseen", n=100, seed_key=first, search="greedy", sounds_like=0):
-        return {r["id"]: r["counts"] for r in results[(run + seed_key, split, n, False, search, sounds_like)][0]}
+    def counts(run, split="test_unseen", n=100, seed_key=first, search="greedy", sounds_like=0, cue_only=False):
+        return {r["id"]: r["counts"]
+                for r in results[(run + seed_key, split, n, False, search, sounds_like, cue_only)][0]}
+
+    def cue_only_figures() -> dict:
+        """The trie arm decoded without spotting (the cue and its trained boost alone), where it spots."""
+        if (f"trie{first}", "test_unseen", 100, False, "greedy", 0, True) not in results:
+            return {"spotting": False}
+        out = {"spotting": True}
+        for sl, tag in ((0, ""), (SOUNDS_LIKE, "_sounds_like")):
+            k = dict(sounds_like=sl)
+            trie, control = s("trie", cue_only=True, **k), s("trie_control", **k)
+            ci = compare_systems(counts("trie_control", **k), counts("trie", cue_only=True, **k), rate="bwer")
+            held, held_control = trie.get(f"bwer:{HELDOUT}"), control.get(f"bwer:{HELDOUT}")
+            out.update({
+                f"bwer_trie_cue_only{tag}_n100": r3(trie["bwer"]),
+                f"bwer_reduction_vs_control_cue_only{tag}_n100": r3(1 - trie["bwer"] / control["bwer"]),
+                f"bwer_delta_vs_control_ci95_cue_only{tag}_n100": [r3(ci["low"]), r3(ci["high"])],
+                f"uwer_trie_cue_only{tag}_n100": r3(trie["uwer"]),
+                f"recall_trie_cue_only{tag}_n100": r3(trie["recall"]),
+                f"bwer_trie_heldout_style_cue_only{tag}_n100": r3(held),
+                f"bwer_reduction_heldout_style_cue_only{tag}_n100": r3(1 - held / held_control) if held_control else None,
+            })
+        return out
 
     def reduction(seed_key=first, search="greedy", sounds_like=0):
         return 1 - (s("trie", seed_key=seed_key, search=search, sounds_like=sounds_like)["bwer"]
@@ -271,6 +304,7 @@ def run_trie_bench(args) -> dict:
         "same_seed_same_metrics": same,
         **beam_figures(),
         **sounds_like_figures(),
+        **cue_only_figures(),
         "seeds": list(recipe.seeds),
         "bench_wall_s": round(time.perf_counter() - t_start, 1),
     }

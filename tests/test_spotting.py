@@ -1,0 +1,118 @@
+"""Keyword spotting that steers the trie's mixing boost (tinyrnnt.bias.spotting)."""
+
+import itertools
+
+import pytest
+import torch
+
+from tinyrnnt.bias.base import BiasConfig
+from tinyrnnt.bias.spotting import FLOOR, SpottingBiaser, can_spot, frame_scores, spot_starts, spotting_decoder
+from tinyrnnt.decode.beam import beam_search
+from tinyrnnt.decode.greedy import greedy_decode
+from tinyrnnt.model.transducer import ModelConfig, Transducer
+from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE, encode
+
+SMALL = ModelConfig(encoder_dim=32, predictor_dim=32, predictor_embed=16, joiner_dim=24, encoder_layers=2)
+HEARD = BiasConfig(kind="trie", cue_dim=8, token_boost=True, boost_mode="mix_heard")
+
+
+def _collapse(path):
+    """A CTC path's label sequence: repeats merged, then blanks removed (Graves et al., ICML 2006)."""
+    out = [k for k, _ in itertools.groupby(path)]
+    return [k for k in out if k != BLANK]
+
+
+def test_spotting_scores_are_the_best_ctc_path_from_the_definition():
+    """Every start frame's score against brute force over all paths of every span (the CTC
+    collapse rule of Graves et al. 2006): the best path spelling the entry minus the best free path
+    over the same frames, ending wherever it scores best."""
+    torch.manual_seed(0)
+    V, T = 4, 5  # blank and three letters
+    logp = torch.log_softmax(torch.randn(2, T, V) * 2, -1)
+    lens = torch.tensor([5, 4])
+    entries = [[1], [1, 2], [2, 2], [3, 1, 3]]
+    L = 3
+    ids = torch.zeros(2, len(entries), L, dtype=torch.long)
+    for j, e in enumerate(entries):
+        ids[:, j, : len(e)] = torch.tensor(e)
+    id_lens = torch.tensor([[len(e) for e in entries]] * 2)
+    got = spot_starts(logp, lens, ids, id_lens)
+    for b in range(2):
+        n = int(lens[b])
+        rel = logp[b, :n] - logp[b, :n].max(-1, keepdim=True).values
+        for j, e in enumerate(entries):
+            for t0 in range(n):
+                best = max((sum(float(rel[t0 + k, v]) for k, v in enumerate(path))
+                            for t1 in range(t0, n) for path in itertools.product(range(V), repeat=t1 - t0 + 1)
+                            if _collapse(path) == e), default=None)
+                if best is None:
+                    assert got[b, t0, j] < -1e20  # the entry cannot fit in the frames left
+                else:
+                    assert got[b, t0, j].item() == pytest.approx(best, abs=1e-5)
+    assert (got[1, 4:] < -1e20).all()  # past the row's length
+
+
+def test_frame_scores_take_the_best_start_near_each_transducer_frame():
+    starts = torch.tensor([[[0.0], [5.0], [1.0], [2.0], [3.0], [9.0]]])  # six CTC frames, one entry
+    assert frame_scores(starts, 2, 3, reach=1)[0, :, 0].tolist() == [5.0, 5.0, 9.0]
+
+
+def _model(seed=0, **bias):
+    torch.manual_seed(seed)
+    cfg = BiasConfig(**{**HEARD.__dict__, **bias})
+    return Transducer(SMALL, cfg).eval()
+
+
+def test_spotting_steers_the_mixing_target_towards_the_spotted_entry():
+    """At a word start with entries "ab" and "cb", spotting that hears "cb" puts the weight of the
+    allowed first letters on "c"; after "c" the partial word matches "cb" only; with no entry
+    open (a letter no entry has) nothing is steered."""
+    model = _model()
+    lists = [["ab", "cb"]]
+    biaser = SpottingBiaser(model.bias.decoder(lists), lists, ratio=2)
+    biaser.scores, biaser.utt = torch.tensor([[[-9.0, 0.0], [-9.0, 0.0]]]), torch.tensor([0])  # (U, T', N)
+    state = biaser.start(1)
+    cue = biaser.features(state)["logits"][0]
+    a, b, c = encode("abc")
+    assert cue[c] == pytest.approx(1.0 + FLOOR, abs=1e-3) and cue[a] == pytest.approx(FLOOR, abs=1e-3)
+    assert cue[b] == 0  # not allowed by the tree: stays out of the target
+    state = biaser.advance(state, torch.tensor([c]), torch.tensor([True]))
+    assert biaser.features(state)["logits"][0][b] == pytest.approx(1.0 + FLOOR, abs=1e-4)
+    state = biaser.advance(state, torch.tensor([a]), torch.tensor([True]))  # "ca": no entry matches
+    assert (biaser.features(state)["logits"][0] == 0).all()  # the tree is dead too
+
+
+def test_spotting_with_empty_lists_decodes_as_without_it_and_batches_agree():
+    model = _model(seed=3)
+    x, xl = torch.randn(3, 60, 80), torch.tensor([60, 52, 40])
+    empty = [[], [], []]
+    plain = greedy_decode(model, x, xl, biaser=model.bias.decoder(empty))
+    assert greedy_decode(model, x, xl, biaser=_listening(model, empty)) == plain
+    lists = [["kell", "kelso", "a"], ["maren"], []]
+    together = greedy_decode(model, x, xl, biaser=_listening(model, lists))
+    beams = beam_search(model, x, xl, lists, beam=3, spotting=True)
+    for b in range(3):
+        one, n = x[b: b + 1, : int(xl[b])], xl[b: b + 1]
+        assert greedy_decode(model, one, n, biaser=_listening(model, [lists[b]]))[0] == together[b]
+        alone = beam_search(model, one, n, [lists[b]], beam=3, spotting=True)[0]
+        assert [t for t, _ in alone] == [t for t, _ in beams[b]]
+    assert [t for t, _ in beam_search(model, x, xl, empty, beam=3, spotting=True)[0]] == \
+        [t for t, _ in beam_search(model, x, xl, empty, beam=3)[0]]
+
+
+def _listening(model, lists):
+    return spotting_decoder(model, lists)
+
+
+@pytest.mark.parametrize("bias,model_cfg,message", [
+    (dict(boost_mode="mix"), SMALL, "needs a model trained with bias.token_boost: true and bias.boost_mode: mix_heard"),
+    (dict(token_boost=False), SMALL, "mix_heard"),
+    ({}, ModelConfig(encoder_dim=32, predictor_dim=32, predictor_embed=16, joiner_dim=24, encoder_layers=2,
+                     ctc_weight=0.0), "needs a model trained with model.ctc_weight > 0"),
+])
+def test_spotting_names_what_the_model_lacks(bias, model_cfg, message):
+    model = Transducer(model_cfg, BiasConfig(**{**HEARD.__dict__, **bias})).eval()
+    assert not can_spot(model)
+    with pytest.raises(ValueError, match=message):
+        spotting_decoder(model, [["kell"]])
+    assert can_spot(_model()) and not can_spot(Transducer(SMALL).eval())

@@ -1,0 +1,212 @@
+"""Keyword spotting steers the trie's mixing boost while decoding (`decode.spotting`).
+
+Greedy decoding picks a name's first letter from what the model hears at that
+moment; with a hundred listed entries the prefix tree allows nearly every first
+letter, so the tree cannot say which one, and a wrong first letter sends the
+search down another entry. The model's own scores of whole entries know more:
+scored as whole words, the control model ranks the spoken name first among 100
+entries for nearly every name of the seen styles (README, "What the benchmarks
+measured"). This module puts that whole-word evidence where the choice is made.
+
+Before the search, every list entry is spotted in the utterance with the
+model's auxiliary CTC head (on the first encoder layer; trained in every arm,
+`model.ctc_weight`): for every start frame t0 and entry e, the best CTC path
+(Viterbi) that spells e from t0 on, in log-probability above the best
+unconstrained path over the same frames (a log-likelihood ratio against a free
+"filler" path, as CTC keyword spotting usually scores a keyword; common
+practice, written from memory), ending wherever it scores best. One backward
+pass over the frames gives every start at once: (frames x entries x CTC
+states), no loop over spans.
+
+While decoding, a hypothesis at a word start reads the scores of spans starting
+near its frame (the CTC frame rate is `model.stack_after_first` times the
+transducer's, plus REACH frames each side); inside a word it keeps the scores
+of the frame where the word began. The entries that the partial word still
+matches get softmax weights of their scores, and the trie's mixing target
+(`boost_mode: mix_heard`: the model's own choice among the allowed tokens,
+tinyrnnt.bias.trie_cue.heard_mix_correction) is multiplied by the weight of
+the entries continuing with each token (plus FLOOR): t_v proportional to
+q_v ** s * (P_v + FLOOR) on the allowed tokens. The gate, blank and the
+tokens the tree does not allow are untouched: spotting only says which allowed
+letter, never whether to follow the list. Nothing is trained; an empty list
+changes nothing. Our own combination of published parts.
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import Tensor, nn
+
+from tinyrnnt.bias.attention import Memory, advance_gate
+from tinyrnnt.bias.base import Biaser
+from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE
+
+REACH = 2  # CTC frames on each side of a transducer frame whose span starts count for it
+FLOOR = 1e-3  # share every allowed token keeps in the spotted mixing target
+NONE_SCORE = -1e4  # a spot-nothing column: rows with no open entry get weight there, so no steer
+NEG = -1e30
+
+
+def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Tensor:
+    """Best spotting score of each entry from each start frame: logp (B, T, V) CTC log-probs with
+    blank = tinyrnnt.text.BLANK, lens (B,) frames, ids (B, N, L) each row's entries padded,
+    id_lens (B, N) their lengths (0 = no entry) -> (B, T, N).
+
+    Score of a span: its best CTC path spelling the entry (blanks around and between letters,
+    a doubled letter needs a blank between) minus the best unconstrained path over the same
+    frames, so it is <= 0 and 0 where the entry is what the model hears best. Frames past a
+    row's length, and entries of length 0, score NEG.
+
+    >>> lp = torch.log(torch.tensor([[[0.1, 0.9, 0.0], [0.8, 0.1, 0.1]]]).clamp_min(1e-9))  # blank, a, b
+    >>> s = spot_starts(lp, torch.tensor([2]), torch.tensor([[[1], [2]]]), torch.tensor([[1, 1]]))
+    >>> [round(x, 3) for x in s[0, 0].tolist()]  # "a" is heard best; "b" best as blank, then "b"
+    [0.0, -4.277]
+    """
+    B, T, V = logp.shape
+    N, L = ids.shape[1], ids.shape[2]
+    S = 2 * L + 1
+    best_free = logp.max(-1).values  # (B, T)
+    rel = logp - best_free[..., None]  # (B, T, V), <= 0
+    labels = torch.full((B, N, S), BLANK, dtype=torch.long)
+    labels[:, :, 1::2] = ids
+    in_entry = torch.arange(S)[None, None, :] < (2 * id_lens[..., None] + 1)  # (B, N, S)
+    last = (2 * id_lens - 1).clamp_min(0)  # (B, N) the last letter's state
+    can_end = (torch.arange(S)[None, None, :] >= last[..., None]) & in_entry & (id_lens[..., None] > 0)
+    # additive penalties (0 or NEG), so each frame is a few adds and maxima over (B, N, S)
+    skip_ok = (ids[:, :, 1:] != ids[:, :, :-1]) & (torch.arange(1, L)[None, None, :] < id_lens[..., None])
+    skip_pen = torch.full((B, N, S - 2), NEG)  # s -> s + 2: from a letter to a different letter
+    skip_pen[:, :, 1::2] = torch.where(skip_ok, 0.0, NEG)
+    entry_pen = torch.where(in_entry, 0.0, NEG)  # states past the entry's end
+    stop = torch.where(can_end, 0.0, NEG)  # a span may end after a final state
+    flat = labels.view(B, N * S)
+    beta = torch.full((B, N, S), NEG)  # best from frame t+1 on, having reached state s at t
+    out = torch.full((B, T, N), NEG)
+    ended = lens.tolist()
+    for t in range(T - 1, -1, -1):
+        ahead = torch.maximum(beta, stop)
+        ahead[..., :-1] = torch.maximum(ahead[..., :-1], beta[..., 1:])
+        ahead[..., :-2] = torch.maximum(ahead[..., :-2], beta[..., 2:] + skip_pen)
+        beta = ahead.add_(entry_pen).add_(rel[:, t].gather(1, flat).view(B, N, S))
+        done = [b for b in range(B) if t >= ended[b]]
+        if done:  # frames past a row's length
+            beta[done] = NEG
+        out[:, t] = torch.maximum(beta[..., 0], beta[..., 1])
+    out = out.clamp_min(NEG)  # sums of penalties stay below NEG: one value for "cannot"
+    return out.masked_fill(~(id_lens > 0)[:, None, :], NEG)
+
+
+def frame_scores(starts: Tensor, ratio: int, frames: int, reach: int = REACH) -> Tensor:
+    """Per transducer frame t, each entry's best score over CTC start frames
+    ratio*t - reach .. ratio*t + ratio - 1 + reach: starts (B, T1, N) -> (B, frames, N).
+
+    >>> frame_scores(torch.tensor([[[0.], [1.], [2.], [3.], [4.]]]), 2, 3, reach=0)[0, :, 0].tolist()
+    [1.0, 3.0, 4.0]
+    """
+    B, T1, N = starts.shape
+    x = starts.transpose(1, 2)  # (B, N, T1)
+    need = frames * ratio + reach  # frames read up to the last window's end
+    x = nn.functional.pad(x, (reach, max(need - T1, 0)), value=NEG)
+    win = x.unfold(2, ratio + 2 * reach, ratio)[:, :, :frames].amax(-1)  # (B, N, frames)
+    return win.transpose(1, 2)
+
+
+class SpottingBiaser(Biaser):
+    """Wraps the decode-time state of a biasing input whose token boost is the trie's heard mixing
+    boost; state: (inner state, row, each entry's match position, at a word start, word-start frame)."""
+
+    listens = True  # the decoders call hear() with the CTC head's log-probabilities first
+
+    def __init__(self, inner: Biaser, lists: list[list[str]], ratio: int):
+        self.inner, self.ratio = inner, ratio
+        mem = Memory(lists)
+        index = mem.index[mem.which]  # (R, N)
+        self.table, self.lengths = mem.ids[index], mem.lengths[index] * mem.valid[mem.which]  # (R, N, L), (R, N)
+        self.frame, self.scores, self.utt = 0, None, None
+
+    def hear(self, logp: Tensor, lens: Tensor, utt_of_row: Tensor, frames: int):
+        """CTC log-probs (U, T1, V) of the utterances and their lengths (U,); utt_of_row (R,): the
+        utterance of each row given to the constructor (rows of one utterance share its list)."""
+        order = torch.argsort(utt_of_row, stable=True)
+        counts = torch.bincount(utt_of_row, minlength=logp.shape[0])
+        first_row = order[(torch.cumsum(counts, 0) - counts).clamp(max=len(order) - 1)]  # a row of each utterance
+        starts = spot_starts(logp, lens, self.table[first_row], self.lengths[first_row])  # (U, T1, N)
+        self.scores = frame_scores(starts, self.ratio, frames)  # (U, T', N)
+        self.utt = utt_of_row
+
+    def set_frame(self, t: int) -> bool:
+        self.frame = t
+        return True
+
+    def select(self, state, index: Tensor):
+        return (self.inner.select(state[0], index), *(s.index_select(0, index) for s in state[1:]))
+
+    def cat(self, states: list):
+        return (self.inner.cat([s[0] for s in states]), *(torch.cat(parts) for parts in zip(*(s[1:] for s in states))))
+
+    def start(self, B: int):
+        N = self.table.shape[1]
+        return (self.inner.start(B), torch.arange(B), torch.zeros(B, N, dtype=torch.long),
+                torch.ones(B, dtype=torch.bool), torch.zeros(B, dtype=torch.long))
+
+    def advance(self, state, tokens: Tensor, emit: Tensor):
+        inner, rows, pos, fresh, began = state
+        at = self.token_at(rows, pos)
+        new_pos, new_fresh = advance_gate(pos, fresh, tokens, None, self.lengths[rows], at=at,
+                                          first=self.table[rows, :, 0])
+        began = torch.where(emit & fresh, torch.full_like(began, self.frame), began)
+        return (self.inner.advance(inner, tokens, emit), rows, torch.where(emit[:, None], new_pos, pos),
+                torch.where(emit, new_fresh, fresh), began)
+
+    def token_at(self, rows: Tensor, pos: Tensor) -> Tensor:
+        """Each entry's token at pos (n, N), read from the flat table (no (n, N, L) copy)."""
+        R, N, L = self.table.shape
+        at = (rows[:, None] * N + torch.arange(N)) * L + pos.clamp(0, L - 1)
+        return self.table.reshape(-1)[at]
+
+    def features(self, state) -> dict:
+        inner, rows, pos, fresh, began = state
+        out = dict(self.inner.features(inner))
+        cue = out.get("logits")
+        if cue is None or self.scores is None:
+            return out
+        frame = torch.where(fresh, torch.full_like(began, self.frame), began).clamp(max=self.scores.shape[1] - 1)
+        score = self.scores[self.utt[rows], frame]  # (n, N)
+        lengths = self.lengths[rows]
+        open_ = (pos >= 0) & (lengths > 0)
+        logits = torch.cat([torch.full_like(score[:, :1], NONE_SCORE), score.masked_fill(~open_, NEG)], 1)
+        w = torch.softmax(logits, -1)[:, 1:]  # (n, N)
+        nxt = torch.where(pos >= lengths, SPACE, self.token_at(rows, pos))  # (n, N)
+        per_token = w.new_zeros(len(rows), VOCAB_SIZE).scatter_add_(1, nxt, w)
+        out["logits"] = cue * (per_token + FLOOR)
+        return out
+
+    def after_predictor(self, features: dict, pred: Tensor) -> dict:
+        return self.inner.after_predictor(features, pred)
+
+    def frames(self, enc: Tensor) -> Tensor | None:
+        return self.inner.frames(enc)
+
+
+def can_spot(model) -> bool:
+    """Whether decode.spotting applies: a heard mixing boost to steer and a CTC head to spot with."""
+    bias = model.bias
+    return (bias is not None and bias.cfg.token_boost and bias.cfg.boost_mode == "mix_heard"
+            and model.ctc_head is not None)
+
+
+def spotting_decoder(model, lists: list[list[str]]) -> SpottingBiaser:
+    """The model's biaser for `lists`, steered by spotting; ValueError naming the setting when the
+    model cannot spot (no CTC head) or has no heard mixing boost to steer."""
+    bias = model.bias
+    if bias is None or not bias.cfg.token_boost or bias.cfg.boost_mode != "mix_heard":
+        raise ValueError("decode.spotting steers the trie's mixing boost: it needs a model trained with "
+                         "bias.token_boost: true and bias.boost_mode: mix_heard")
+    if model.ctc_head is None:
+        raise ValueError("decode.spotting spots list entries with the model's CTC head: it needs a model "
+                         "trained with model.ctc_weight > 0")
+    return SpottingBiaser(bias.decoder(lists), lists, model.cfg.stack_after_first)
+
+
+def ctc_log_probs(model, first: Tensor) -> Tensor:
+    """Log-probabilities (B, T1, V) of the CTC head over the first encoder layer's output."""
+    return torch.log_softmax(model.ctc_head(first), dim=-1)
