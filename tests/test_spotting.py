@@ -36,7 +36,8 @@ def test_spotting_scores_are_the_best_ctc_path_from_the_definition():
     for j, e in enumerate(entries):
         ids[:, j, : len(e)] = torch.tensor(e)
     id_lens = torch.tensor([[len(e) for e in entries]] * 2)
-    got = spot_starts(logp, lens, ids, id_lens)
+    got = spot_starts(logp, lens, ids, id_lens, chunks=1)
+    assert torch.equal(spot_starts(logp, lens, ids, id_lens, chunks=2), got)  # groups of similar length
     for b in range(2):
         n = int(lens[b])
         rel = logp[b, :n] - logp[b, :n].max(-1, keepdim=True).values
@@ -50,6 +51,15 @@ def test_spotting_scores_are_the_best_ctc_path_from_the_definition():
                 else:
                     assert got[b, t0, j].item() == pytest.approx(best, abs=1e-5)
     assert (got[1, 4:] < -1e20).all()  # past the row's length
+
+
+def test_groups_of_similar_length_give_the_same_scores():
+    torch.manual_seed(1)
+    logp = torch.log_softmax(torch.randn(3, 30, VOCAB_SIZE) * 3, -1)
+    ids = torch.randint(1, VOCAB_SIZE, (3, 40, 9))
+    id_lens = torch.randint(0, 10, (3, 40))
+    lens = torch.tensor([30, 22, 9])
+    assert torch.equal(spot_starts(logp, lens, ids, id_lens, chunks=3), spot_starts(logp, lens, ids, id_lens, chunks=1))
 
 
 def test_frame_scores_take_the_best_start_near_each_transducer_frame():

@@ -47,7 +47,30 @@ NONE_SCORE = -1e4  # a spot-nothing column: rows with no open entry get weight t
 NEG = -1e30
 
 
-def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Tensor:
+CHUNKS = 4  # entries are scored in this many groups of similar length (fewer states for the short)
+
+
+def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor, chunks: int = CHUNKS) -> Tensor:
+    """`_spot` over groups of entries of similar length: each group's states stop at its longest
+    entry, so lists of many short spellings and a few long ones cost less. Same values as one
+    group (tests/test_spotting.py)."""
+    B, N = id_lens.shape
+    if chunks <= 1 or N < 2 * chunks:
+        return _spot(logp, lens, ids, id_lens)
+    order = torch.argsort(id_lens, dim=1, stable=True)  # (B, N) shortest first, per row
+    ids_sorted = ids.gather(1, order[..., None].expand_as(ids))
+    lens_sorted = id_lens.gather(1, order)
+    parts = []
+    for lo in range(0, N, -(-N // chunks)):
+        hi = min(N, lo + -(-N // chunks))
+        L = max(int(lens_sorted[:, lo:hi].max()), 1)
+        parts.append(_spot(logp, lens, ids_sorted[:, lo:hi, :L], lens_sorted[:, lo:hi]))
+    out = torch.empty(B, logp.shape[1], N)
+    out.scatter_(2, order[:, None, :].expand(-1, logp.shape[1], -1), torch.cat(parts, 2))
+    return out
+
+
+def _spot(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Tensor:
     """Best spotting score of each entry from each start frame: logp (B, T, V) CTC log-probs with
     blank = tinyrnnt.text.BLANK, lens (B,) frames, ids (B, N, L) each row's entries padded,
     id_lens (B, N) their lengths (0 = no entry) -> (B, T, N).
@@ -58,7 +81,7 @@ def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Ten
     row's length, and entries of length 0, score NEG.
 
     >>> lp = torch.log(torch.tensor([[[0.1, 0.9, 0.0], [0.8, 0.1, 0.1]]]).clamp_min(1e-9))  # blank, a, b
-    >>> s = spot_starts(lp, torch.tensor([2]), torch.tensor([[[1], [2]]]), torch.tensor([[1, 1]]))
+    >>> s = _spot(lp, torch.tensor([2]), torch.tensor([[[1], [2]]]), torch.tensor([[1, 1]]))
     >>> [round(x, 3) for x in s[0, 0].tolist()]  # "a" is heard best; "b" best as blank, then "b"
     [0.0, -4.277]
     """
@@ -76,7 +99,8 @@ def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Ten
     skip_ok = (ids[:, :, 1:] != ids[:, :, :-1]) & (torch.arange(1, L)[None, None, :] < id_lens[..., None])
     skip_pen = torch.full((B, N, S - 2), NEG)  # s -> s + 2: from a letter to a different letter
     skip_pen[:, :, 1::2] = torch.where(skip_ok, 0.0, NEG)
-    entry_pen = torch.where(in_entry, 0.0, NEG)  # states past the entry's end
+    # states past an entry's end need no mask: going backwards, a state draws only on higher ones,
+    # so they only ever draw on each other and stay at NEG or below
     stop = torch.where(can_end, 0.0, NEG)  # a span may end after a final state
     flat = labels.view(B, N * S)
     beta = torch.full((B, N, S), NEG)  # best from frame t+1 on, having reached state s at t
@@ -86,7 +110,7 @@ def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Ten
         ahead = torch.maximum(beta, stop)
         ahead[..., :-1] = torch.maximum(ahead[..., :-1], beta[..., 1:])
         ahead[..., :-2] = torch.maximum(ahead[..., :-2], beta[..., 2:] + skip_pen)
-        beta = ahead.add_(entry_pen).add_(rel[:, t].gather(1, flat).view(B, N, S))
+        beta = ahead.add_(rel[:, t].gather(1, flat).view(B, N, S))
         done = [b for b in range(B) if t >= ended[b]]
         if done:  # frames past a row's length
             beta[done] = NEG
