@@ -171,6 +171,22 @@ def next_tokens(table: Tensor, lengths: Tensor, pos: Tensor) -> Tensor:
     return torch.where(pos[..., 0] >= lengths, torch.full_like(at, SPACE), at)
 
 
+def tokens_at(table: Tensor, rows: Tensor, pos: Tensor) -> Tensor:
+    """Each entry's token at pos (clamped into the entry's row), (n, N), of rows `rows` (n,) of a
+    table (R, N, L).
+
+    subtle: read from the flat table by index; table[rows] would copy (n, N, L) tokens at every
+    decoding step, which at N = 5000 cost more than the attention itself.
+
+    >>> t, _ = token_table(["ab", "c"])
+    >>> tokens_at(t[None], torch.tensor([0]), torch.tensor([[1, 0]])).tolist() == [[4, 5]]
+    True
+    """
+    R, N, L = table.shape
+    at = (rows[:, None] * N + torch.arange(N)) * L + pos.clamp(0, L - 1)  # (n, N)
+    return table.reshape(-1)[at]
+
+
 class Memory:
     """The distinct lists of a set of rows (beam search gives each utterance's list once per
     hypothesis slot), each list's entries as indices into the distinct words, and which list
@@ -406,13 +422,7 @@ class AttentionBiaser(Biaser):
         return rows, torch.where(emit[:, None], new_pos, pos), torch.where(emit, new_fresh, fresh)
 
     def token_at(self, rows: Tensor, pos: Tensor) -> Tensor:
-        """Each entry's token at pos (clamped into the entry's row of the table), (n, N).
-
-        subtle: read from the flat table by index; self.table[rows] would copy (n, N, L) tokens at
-        every step, which at N = 5000 cost more than the attention itself."""
-        R, N, L = self.table.shape
-        at = (rows[:, None] * N + torch.arange(N)) * L + pos.clamp(0, L - 1)  # (n, N)
-        return self.table.reshape(-1)[at]
+        return tokens_at(self.table, rows, pos)
 
     def features(self, state) -> dict:
         rows = state[0]

@@ -37,7 +37,7 @@ from __future__ import annotations
 import torch
 from torch import Tensor, nn
 
-from tinyrnnt.bias.attention import Memory, advance_gate
+from tinyrnnt.bias.attention import Memory, advance_gate, tokens_at
 from tinyrnnt.bias.base import Biaser
 from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE
 
@@ -182,10 +182,7 @@ class SpottingBiaser(Biaser):
                 torch.where(emit, new_fresh, fresh), began)
 
     def token_at(self, rows: Tensor, pos: Tensor) -> Tensor:
-        """Each entry's token at pos (n, N), read from the flat table (no (n, N, L) copy)."""
-        R, N, L = self.table.shape
-        at = (rows[:, None] * N + torch.arange(N)) * L + pos.clamp(0, L - 1)
-        return self.table.reshape(-1)[at]
+        return tokens_at(self.table, rows, pos)
 
     def features(self, state) -> dict:
         inner, rows, pos, fresh, began = state
