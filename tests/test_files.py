@@ -71,6 +71,11 @@ def test_train_corpus_experiment_and_decode_refuse_an_unwritable_folder_before_w
     _fails(capsys, ["experiment", f"data.corpus={corpus}", f"out_dir={unwritable}", *SMALL], "results folder")
     _fails(capsys, ["decode", ckpt_run / "checkpoints" / "last.ckpt", "--corpus", corpus, "--out", unwritable / "d"],
            "decode output folder", "cannot write")
+    # keyword spotting asked of a model with no trie boost to steer: one line, no hypotheses written
+    out = unwritable.parent / "spot"
+    _fails(capsys, ["decode", ckpt_run / "checkpoints" / "last.ckpt", "--corpus", corpus, "--split", "test_unseen",
+                    "--list-size", "10", "--out", out, "decode.spotting=true"], "decode.spotting", "mix_heard")
+    assert not out.exists() or not list(out.iterdir())
 
 
 def test_a_disk_without_room_is_refused_before_training_or_building(corpus, tmp_path, capsys, monkeypatch):

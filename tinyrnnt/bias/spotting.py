@@ -216,14 +216,16 @@ def can_spot(model) -> bool:
 
 
 def spotting_decoder(model, lists: list[list[str]]) -> SpottingBiaser:
-    """The model's biaser for `lists`, steered by spotting; ValueError naming the setting when the
-    model cannot spot (no CTC head) or has no heard mixing boost to steer."""
+    """The model's biaser for `lists`, steered by spotting; ConfigError (a ValueError) naming the
+    setting when the model cannot spot (no CTC head) or has no heard mixing boost to steer."""
+    from tinyrnnt.config import ConfigError
+
     bias = model.bias
     if bias is None or not bias.cfg.token_boost or bias.cfg.boost_mode != "mix_heard":
-        raise ValueError("decode.spotting steers the trie's mixing boost: it needs a model trained with "
+        raise ConfigError("decode.spotting steers the trie's mixing boost: it needs a model trained with "
                          "bias.token_boost: true and bias.boost_mode: mix_heard")
     if model.ctc_head is None:
-        raise ValueError("decode.spotting spots list entries with the model's CTC head: it needs a model "
+        raise ConfigError("decode.spotting spots list entries with the model's CTC head: it needs a model "
                          "trained with model.ctc_weight > 0")
     return SpottingBiaser(bias.decoder(lists), lists, model.cfg.stack_after_first)
 
