@@ -45,8 +45,6 @@ REACH = 2  # CTC frames on each side of a transducer frame whose span starts cou
 FLOOR = 1e-3  # share every allowed token keeps in the spotted mixing target
 NONE_SCORE = -1e4  # a spot-nothing column: rows with no open entry get weight there, so no steer
 NEG = -1e30
-
-
 CHUNKS = 4  # entries are scored in this many groups of similar length (fewer states for the short)
 
 
@@ -60,9 +58,9 @@ def spot_starts(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor, chunks
     order = torch.argsort(id_lens, dim=1, stable=True)  # (B, N) shortest first, per row
     ids_sorted = ids.gather(1, order[..., None].expand_as(ids))
     lens_sorted = id_lens.gather(1, order)
-    parts = []
-    for lo in range(0, N, -(-N // chunks)):
-        hi = min(N, lo + -(-N // chunks))
+    parts, size = [], -(-N // chunks)
+    for lo in range(0, N, size):
+        hi = min(N, lo + size)
         L = max(int(lens_sorted[:, lo:hi].max()), 1)
         parts.append(_spot(logp, lens, ids_sorted[:, lo:hi, :L], lens_sorted[:, lo:hi]))
     out = torch.empty(B, logp.shape[1], N)
@@ -210,9 +208,19 @@ class SpottingBiaser(Biaser):
 
 def can_spot(model) -> bool:
     """Whether decode.spotting applies: a heard mixing boost to steer and a CTC head to spot with."""
+    return _missing(model) is None
+
+
+def _missing(model) -> str | None:
+    """What keeps `model` from spotting, as an error message, or None."""
     bias = model.bias
-    return (bias is not None and bias.cfg.token_boost and bias.cfg.boost_mode == "mix_heard"
-            and model.ctc_head is not None)
+    if bias is None or not bias.cfg.token_boost or bias.cfg.boost_mode != "mix_heard":
+        return ("decode.spotting steers the trie's mixing boost: it needs a model trained with "
+                "bias.token_boost: true and bias.boost_mode: mix_heard")
+    if model.ctc_head is None:
+        return ("decode.spotting spots list entries with the model's CTC head: it needs a model "
+                "trained with model.ctc_weight > 0")
+    return None
 
 
 def spotting_decoder(model, lists: list[list[str]]) -> SpottingBiaser:
@@ -220,14 +228,10 @@ def spotting_decoder(model, lists: list[list[str]]) -> SpottingBiaser:
     setting when the model cannot spot (no CTC head) or has no heard mixing boost to steer."""
     from tinyrnnt.config import ConfigError
 
-    bias = model.bias
-    if bias is None or not bias.cfg.token_boost or bias.cfg.boost_mode != "mix_heard":
-        raise ConfigError("decode.spotting steers the trie's mixing boost: it needs a model trained with "
-                         "bias.token_boost: true and bias.boost_mode: mix_heard")
-    if model.ctc_head is None:
-        raise ConfigError("decode.spotting spots list entries with the model's CTC head: it needs a model "
-                         "trained with model.ctc_weight > 0")
-    return SpottingBiaser(bias.decoder(lists), lists, model.cfg.stack_after_first)
+    missing = _missing(model)
+    if missing is not None:
+        raise ConfigError(missing)
+    return SpottingBiaser(model.bias.decoder(lists), lists, model.cfg.stack_after_first)
 
 
 def ctc_log_probs(model, first: Tensor) -> Tensor:

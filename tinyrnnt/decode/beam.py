@@ -174,7 +174,7 @@ def beam_search(model, feats: Tensor, feat_lens: Tensor, lists: list[list[str]] 
     enc_p = model.joiner.enc_proj(enc.index_select(0, order))  # (B, T', Dj)
     lens = enc_lens.index_select(0, order).tolist()
     row_lists = [lists[int(b)] for b in order for _ in range(K)]  # rows of an utterance share its list
-    biaser = model.bias.decoder(row_lists) if model.bias is not None else None
+    biaser = model.bias.decoder(row_lists) if model.bias is not None and not spotting else None
     if spotting:
         from tinyrnnt.bias.spotting import ctc_log_probs, spotting_decoder
 

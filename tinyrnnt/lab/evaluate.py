@@ -174,9 +174,8 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
             else:
                 # a biased model always decodes with its biaser (beam search builds its own per row);
                 # at N = 0 the lists are empty
-                biaser = model.bias.decoder(lists) if model.bias is not None else None
-                if spotting:
-                    biaser = spotting_decoder(model, lists)
+                biaser = (spotting_decoder(model, lists) if spotting
+                          else model.bias.decoder(lists) if model.bias is not None else None)
                 hyps = greedy_decode(model, batch["feats"], batch["feat_lens"], max_symbols=max_symbols,
                                      biaser=biaser)
             decode_s += time.perf_counter() - t0
