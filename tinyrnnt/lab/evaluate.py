@@ -9,7 +9,7 @@ from pathlib import Path
 
 import torch
 
-from tinyrnnt.bias.soundslike import check_phones, corpus_key, expand_list, put_back
+from tinyrnnt.bias.soundslike import check_phones, corpus_key, corpus_spellings, expand_list, put_back
 from tinyrnnt.data import CorpusError, CorpusSplit, loader
 from tinyrnnt.decode.greedy import greedy_decode
 from tinyrnnt.score import score_utterance, summarize
@@ -142,7 +142,7 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
                               f"known classes: {known}")
     if sounds_like:
         phones_of = {**split.pronunciations(), **(pronunciations or {})}
-        vocabulary, key, spellings = split.training_vocabulary(), corpus_key(split), {}
+        vocabulary, key, spellings = split.training_vocabulary(), corpus_key(split), corpus_spellings(split)
     records, decode_s, audio_s = [], 0.0, 0.0
     total = min(limit, len(split.items)) if limit is not None else len(split.items)
     label = progress if isinstance(progress, str) else f"{split.split} N={list_size}"

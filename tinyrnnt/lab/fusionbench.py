@@ -12,6 +12,11 @@ carry sounds-like spellings, tinyrnnt.bias.soundslike); plus after-trigger fusio
 triggers, the real-time factor of beam 4 with trie cue and boosting at N = 1000
 on one thread, and our beam search against torchaudio's RNNTBeamSearch on the
 same plain model, beam and utterances (WER and time, side by side).
+
+The trie arm decodes as its recipe says: with `decode.spotting` (keyword spotting
+steers its mixing boost, tinyrnnt.bias.spotting) in its tuning, its test arms and
+its real-time factor (also measured without spotting, beside); the baseline and
+control have no boost to steer.
 """
 
 from __future__ import annotations
@@ -48,6 +53,7 @@ def run_fusion_bench(args) -> dict:
     import torch
 
     from tinyrnnt.bias.fusion import parse_triggers
+    from tinyrnnt.bias.spotting import can_spot
     from tinyrnnt.data import CorpusSplit, loader
     from tinyrnnt.decode.beam import beam_search
     from tinyrnnt.decode.reference import reference_beam_search
@@ -63,6 +69,8 @@ def run_fusion_bench(args) -> dict:
     models = {key: load_model(trained["arms"][key]["last_checkpoint"])[0] for key in ("baseline", "trie_control", "trie")}
     torch.set_num_threads(2)
     corpus, limit, beam = args.corpus, (args.limit or None), 4
+    spot = bool(arms["trie"].cfg.decode.spotting and can_spot(models["trie"]))  # the trie recipe's decoding
+    spotting = {"baseline": False, "trie_control": False, "trie": spot}
     triggers = parse_triggers(TRIGGERS)
 
     # 1. the boost weight, tuned on valid for each model it is applied to
@@ -77,7 +85,7 @@ def run_fusion_bench(args) -> dict:
                             triggers=TRIGGERS if where == "after_trigger" else None, limit=limit,
                             soundalike="test_soundalike" if key == "baseline" else None, label=f"{key} {where}",
                             sounds_like=sl, model_scales=(MODEL_SCALES if not args.quick else (0.0, 1.0))
-                            if key == "trie" else (1.0,))
+                            if key == "trie" else (1.0,), spotting=spotting[key])
         name = f"boost_curve_{key}_{where}" + (f"_sounds_like{sl}" if sl else "")
         write_curve(out_dir, name, sweep)
         chosen[(key, where, sl)], curves[name] = sweep["chosen"], sweep["rows"]
@@ -112,7 +120,7 @@ def run_fusion_bench(args) -> dict:
         for split, sizes in ((test, (10, 100, 1000) if all_sizes else (100,)), (alike, (100,))):
             for n in sizes:
                 records, summary = evaluate(models[key], split, list_size=n, search="beam", beam=beam, boost=boost,
-                                            limit=limit, sounds_like=sl)
+                                            limit=limit, sounds_like=sl, spotting=spotting[key])
                 summary["chosen_boost_weight"] = boost["weight"] if boost else 0.0
                 save_results(out_dir / arm, f"{split.split}.n{n}", records, summary)
                 results[(arm, split.split, n)] = (records, summary)
@@ -137,9 +145,14 @@ def run_fusion_bench(args) -> dict:
     boost = {"weight": chosen[("trie", "anywhere", 0)] or 1.0, "where": "anywhere", "triggers": triggers,
              "model_scale": scale_of[("trie", "anywhere", 0)]}
     _, rtf_summary = evaluate(models["trie"], test, list_size=1000, search="beam", beam=beam, boost=boost,
-                              limit=rtf_limit)
+                              limit=rtf_limit, spotting=spot)
     rtf = rtf_summary["rtf"]
-    _log(f"RTF beam 4 + trie + fusion at N=1000, one thread: {rtf:.4f}")
+    _log(f"RTF beam 4 + trie + fusion at N=1000, one thread{' (spotting)' if spot else ''}: {rtf:.4f}")
+    rtf_plain = None
+    if spot:  # beside: the same decoding without spotting
+        rtf_plain = evaluate(models["trie"], test, list_size=1000, search="beam", beam=beam, boost=boost,
+                             limit=rtf_limit)[1]["rtf"]
+        _log(f"RTF beam 4 + trie + fusion at N=1000, one thread, without spotting: {rtf_plain:.4f}")
 
     # 4. against torchaudio's RNNTBeamSearch: plain baseline, same beam and utterances, one thread
     ref_split = CorpusSplit(corpus, "test")
@@ -233,6 +246,8 @@ def run_fusion_bench(args) -> dict:
         "curve_turns_uwer": turns(base_curve, "uwer"),
         "curve_turns_soundalike_false_triggers": turns(base_curve, "soundalike_false_trigger_rate"),
         "rtf_beam4_trie_fusion_n1000": round(rtf, 5),
+        "rtf_beam4_trie_fusion_no_spotting_n1000": None if rtf_plain is None else round(rtf_plain, 5),
+        "trie_spotting": spot,
         "rtf_utterances": rtf_summary["n_utts"],
         "speedup_vs_torchaudio_beam": round(theirs_s / max(ours_s, 1e-9), 2),
         "seconds_ours_vs_torchaudio": [round(ours_s, 2), round(theirs_s, 2)],

@@ -15,20 +15,23 @@ SHOWN = ("steps", "boost_weight", "wer", "uwer", "bwer", "recall", "false_trigge
 def tuned_weight(model, cfg, dcfg, evaluate_plan, decoding: str, say) -> float:
     """The boost weight chosen on the tuning split (evaluate.tune of the recipe) for one model and
     decoding; a curve already saved for the same grid of weights and split is read back."""
+    from tinyrnnt.bias.spotting import can_spot
     from tinyrnnt.lab.fusion import sweep_boost, write_curve
 
     tune = evaluate_plan.tune
     folder = Path(cfg.run_dir) / "results"
     saved = folder / f"boost_curve.{decoding}.json"
+    spotting = bool(dcfg.spotting and can_spot(model))
     if saved.is_file():
         sweep = json.loads(saved.read_text(encoding="utf-8"))
         if ([r["weight"] for r in sweep["rows"]] == [float(w) for w in tune.weights] and sweep["split"] == tune.split
                 and sweep["list_size"] == tune.list_size and sweep["where"] == dcfg.boost_where
-                and sweep["objective"] == tune.objective and sweep.get("sounds_like", 0) == dcfg.sounds_like):
+                and sweep["objective"] == tune.objective and sweep.get("sounds_like", 0) == dcfg.sounds_like
+                and sweep.get("spotting", False) == spotting):
             return sweep["chosen"]
     sweep = sweep_boost(model, cfg.data.corpus, tune.weights, tune.split, tune.list_size, dcfg.beam, dcfg.max_symbols,
                         dcfg.boost_where, dcfg.triggers, tune.objective, evaluate_plan.limit or None,
-                        label=f"{cfg.name} {decoding}", sounds_like=dcfg.sounds_like)
+                        label=f"{cfg.name} {decoding}", sounds_like=dcfg.sounds_like, spotting=spotting)
     write_curve(folder, f"boost_curve.{decoding}", sweep)
     say(f"{cfg.name} {decoding}: boost weight {sweep['chosen']:g} chosen on {tune.split}")
     return sweep["chosen"]
