@@ -178,6 +178,11 @@ def test_phrase_convolution_by_lookups_equals_torch_conv1d(width):
     ref_grads = torch.autograd.grad((ref * g).sum(), [att.embed.weight, att.conv.weight, att.conv.bias])
     for a, b in zip(ours_grads, ref_grads):
         assert torch.allclose(a, b, atol=1e-4)
+    with torch.no_grad():  # decoding's path (embedding_bag lookups, padding pooled at 0) against the same
+        assert torch.allclose(att.token_convolution(ids), ref, atol=1e-5)
+        lengths = torch.tensor([4, 1, 8, 4])
+        pooled = torch.stack([ref[i, :n].max(0).values.relu() for i, n in enumerate(lengths.tolist())])
+        assert torch.allclose(att.encode_phrases(ids, lengths), pooled, atol=1e-5)
 
 
 def test_rows_packed_per_list_equal_torch_attention_row_by_row():
