@@ -484,3 +484,27 @@ def test_steered_mixing_target_decodes_as_it_trains():
     assert (train["logits"][2] == 0).all()  # an empty list: no tree, nothing to steer
     with pytest.raises(ConfigError, match="needs bias.token_boost: true and bias.boost_mode: mix"):
         build_biasing(BiasConfig(kind="trie+attention", options=cfg.options), 24, 16, PRED, ENC)
+
+
+def test_context_dropout_leaves_out_whole_utterances_in_training_only():
+    """bias.options.context_dropout (modality dropout, common practice): in training each
+    utterance's attention context is either all there or all left out, so the pair's joiner input
+    is then the trie cue's alone; in eval mode it is always there."""
+    torch.manual_seed(0)
+    cfg = BiasConfig(kind="trie+attention", cue_dropout=0.0, options={"phrase_gate": "prefix", "context_dropout": 0.5})
+    module = build_biasing(cfg, 24, 16, PRED, ENC)
+    texts = TEXTS * 4
+    targets, lens = _targets(texts)
+    lists = [["kell", "maren"]] * len(texts)
+    pred = torch.randn(len(texts), targets.shape[1] + 1, PRED)
+    module.eval()
+    both = module.after_predictor(module.features(lists, targets, lens), pred)["joiner"]
+    trie = module.trie.features(lists, targets, lens)["joiner"]
+    module.train()
+    torch.manual_seed(1)
+    dropped = module.after_predictor(module.features(lists, targets, lens), pred)["joiner"]
+    kept = [torch.allclose(d, b, atol=1e-6) for d, b in zip(dropped, both)]
+    alone = [torch.allclose(d, t.expand_as(d), atol=1e-6) for d, t in zip(dropped, trie)]
+    assert all(k != a for k, a in zip(kept, alone)) and any(kept) and any(alone)
+    with pytest.raises(ConfigError, match="context_dropout is a share of utterances, below 1"):
+        AttentionSettings(context_dropout=1.0)

@@ -71,11 +71,18 @@ class AttentionSettings:
     # next tokens (uniform over the tree's allowed tokens where attention rests on no-bias) instead
     # of uniform over them, so the two inputs do not hand the joiner the same signal twice.
     steer: bool = False
+    # Training only: the share of training utterances whose attention context is left out of the
+    # joiner (drawn per utterance and step; no rescaling, decoding always uses it). In trie + attention
+    # the trie cue then also learns to stand alone rather than lean on the attention's copy of its
+    # signal (modality dropout, common practice; written from memory). 0 = never.
+    context_dropout: float = 0.0
 
     def __post_init__(self):
         from tinyrnnt.config import ConfigError, require
 
-        require(self, "bias.options", positive=("dim", "embed", "width"), at_least_zero=("guide",))
+        require(self, "bias.options", positive=("dim", "embed", "width"), at_least_zero=("guide", "context_dropout"))
+        if self.context_dropout >= 1:
+            raise ConfigError(f"bias.options.context_dropout is a share of utterances, below 1; got {self.context_dropout}")
         for name, value, choices in (("encoder", self.encoder, ENCODERS), ("phrase_gate", self.phrase_gate, GATES),
                                      ("query", self.query, QUERIES), ("values", self.values, VALUES)):
             if value not in choices:
@@ -373,6 +380,9 @@ class ListAttention(BiasingInput):
         if GUIDE_KEY in features:  # training only: the guided attention loss
             out["loss"] = self.opts.guide * guide_loss(w, features[GUIDE_KEY])
         j = self.to_joiner(context)  # (..., Dj)
+        if self.training and self.opts.context_dropout > 0:  # per utterance: (B, U+1, Dj) in training
+            kept = torch.rand(j.shape[0], device=j.device) >= self.opts.context_dropout
+            j = j * kept.view(-1, *([1] * (j.dim() - 1)))
         out["joiner"] = j if features.get("joiner") is None else features["joiner"] + j
         return out
 
