@@ -159,3 +159,18 @@ def test_spotting_names_what_the_model_lacks(bias, model_cfg, message):
     with pytest.raises(ValueError, match=message):
         spotting_decoder(model, [["kell"]])
     assert can_spot(_model()) and not can_spot(Transducer(SMALL).eval())
+
+
+def test_a_token_boost_scaled_to_nothing_leaves_nothing_to_steer():
+    """evaluate() skips spotting when decode.model_boost_scale is 0: beam search with fusion and the
+    model's boost scaled to 0 gives the same hypotheses and scores with and without spotting."""
+    model = _model(seed=5)
+    x, xl = torch.randn(2, 60, 80), torch.tensor([60, 45])
+    lists = [["kell", "kelso"], ["maren", "a"]]
+    boost = {"weight": 1.0, "where": "anywhere"}
+    with torch.no_grad(), model.scaled_token_boost(0.0):
+        plain = beam_search(model, x, xl, lists, beam=3, boost=boost)
+        spotted = beam_search(model, x, xl, lists, beam=3, boost=boost, spotting=True)
+    assert [[t for t, _ in n] for n in plain] == [[t for t, _ in n] for n in spotted]
+    for a, b in zip(plain, spotted):
+        assert [s for _, s in a] == pytest.approx([s for _, s in b], abs=1e-5)

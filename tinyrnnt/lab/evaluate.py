@@ -149,6 +149,8 @@ def evaluate(model, split: CorpusSplit, list_size: int = 0, confusable: bool = F
     started = time.perf_counter()
     hop = split.card["features"]["hop_ms"] / 1000.0
     scale = float(boost.get("model_scale", 1.0)) if boost is not None else 1.0  # decode.model_boost_scale
+    # spotting steers the model's token boost: with that boost scaled to 0 it changes nothing, costs the most
+    spotting = spotting and scale != 0
     with torch.no_grad(), model.scaled_token_boost(scale):
         for batch in loader(split, batch_size, transform=attach):
             if limit is not None and len(records) >= limit:
