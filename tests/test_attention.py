@@ -237,7 +237,7 @@ def test_characters_outside_the_inventory_are_refused_where_lists_are_read(entry
     ({"encoder": "transformer"}, "encoder must be one of"),
     ({"width": 4}, "width must be odd"),
     ({"dim": 0}, "dim must be above 0"),
-    ({"size": 3}, "unknown key 'size'; valid keys: dim, embed, encoder, guide, phrase_gate, query, steer, values, width"),
+    ({"size": 3}, "unknown key 'size'; valid keys: context_dropout, dim, embed, encoder, guide, phrase_gate, query, steer, values, width"),
     ({"guide": -1}, "guide cannot be negative"),
     ({"query": "encoder", "guide": 1.0}, "guide needs query: predictor"),
     ({"values": "next_token"}, "needs phrase_gate 'prefix' or 'started'"),
