@@ -147,9 +147,9 @@ def run_fusion_bench(args) -> dict:
     _, rtf_summary = evaluate(models["trie"], test, list_size=1000, search="beam", beam=beam, boost=boost,
                               limit=rtf_limit, spotting=spot)
     rtf = rtf_summary["rtf"]
-    _log(f"RTF beam 4 + trie + fusion at N=1000, one thread{' (spotting)' if spot else ''}: {rtf:.4f}")
-    rtf_plain = None
-    if spot:  # beside: the same decoding without spotting
+    _log(f"RTF beam 4 + trie + fusion at N=1000, one thread{' (spotting)' if rtf_summary['spotting'] else ''}: {rtf:.4f}")
+    rtf_plain = None if not spot else rtf  # evaluate skips spotting where the pair turns the boost off
+    if rtf_summary["spotting"]:  # beside: the same decoding without spotting
         rtf_plain = evaluate(models["trie"], test, list_size=1000, search="beam", beam=beam, boost=boost,
                              limit=rtf_limit)[1]["rtf"]
         _log(f"RTF beam 4 + trie + fusion at N=1000, one thread, without spotting: {rtf_plain:.4f}")
