@@ -95,8 +95,9 @@ def test_spotting_steers_the_mixing_target_towards_the_spotted_entry():
 def test_entries_heard_nowhere_are_dropped_from_the_steering(monkeypatch):
     """CTC frames that spell "cb" and nothing else: "ab" and "cd" score far below HEARD_FLOOR
     (a letter the head never emits), so only "cb" steers; a hypothesis that goes on to spell "ab"
-    gets the cue alone (every allowed letter FLOOR), where without the floor it would be steered
-    along "ab". Numbers worked by hand from the definition in tinyrnnt.bias.spotting."""
+    follows no heard entry, so its boost is off (an all-zero cue: the mixing correction is 0 and
+    the model's own logits stand), where without the floor it would be steered along "ab".
+    Numbers worked by hand from the definition in tinyrnnt.bias.spotting."""
     import tinyrnnt.bias.spotting as spotting
 
     a, b, c, d = encode("abcd")
@@ -119,7 +120,10 @@ def test_entries_heard_nowhere_are_dropped_from_the_steering(monkeypatch):
     biaser, at_start, cue = after_a(-20.0)
     assert biaser.table.shape[1] == 1 and biaser.table[0, 0, :2].tolist() == [c, b]  # only "cb" kept
     assert at_start[c] == pytest.approx(1.0 + FLOOR, abs=1e-6) and at_start[a] == pytest.approx(FLOOR)
-    assert cue[b] == pytest.approx(FLOOR)  # "ab" was never heard: not steered
+    assert (cue == 0).all()  # "ab" was never heard: no boost at all for this hypothesis
+    logits = torch.randn(VOCAB_SIZE)
+    hidden = torch.randn(model.cfg.joiner_dim)
+    assert (model.bias.token_scores(hidden, cue, logits) == 0).all()  # the model's own logits stand
     _, at_start, cue = after_a(float("-inf"))  # every entry kept: "ab" is the only one open after "a"
     assert at_start[c] == pytest.approx(1.0 + FLOOR, abs=1e-6)
     assert cue[b] == pytest.approx(1.0 + FLOOR)
