@@ -205,6 +205,39 @@ evaluate: {{splits: [test_unseen], list_sizes: [0]}}
     assert again == first and (ckpt.stat().st_mtime_ns, scores.stat().st_mtime_ns) == stamps
 
 
+def test_resume_evaluates_again_when_the_run_switches_spotting_on(corpus, tmp_path):
+    """decode.spotting belongs to the run, not to the recipe's decodings: a result decoded without
+    it must not be read back for a run that now spots (nor the other way round)."""
+    import json as _json
+
+    def recipe(spot: bool):
+        path = tmp_path / "r.yaml"
+        path.write_text(f"""
+name: spots
+out_dir: {tmp_path / 'runs'}
+controls: false
+shared:
+  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
+  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
+  train: {{steps: 4, minutes: 0, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
+runs:
+  trie:
+    bias: {{kind: trie, cue_dim: 8, token_boost: true, boost_mode: mix_heard}}
+    decode: {{spotting: {str(spot).lower()}}}
+evaluate: {{splits: [test_unseen], list_sizes: [10], limit: 8}}
+""")
+        return path
+
+    run_recipe(recipe(False), quiet=True)
+    scores = tmp_path / "runs" / "spots" / "trie" / "results" / "test_unseen.n10.scores.json"
+    stamp = scores.stat().st_mtime_ns
+    run_recipe(recipe(False), quiet=True, resume=True)
+    assert scores.stat().st_mtime_ns == stamp  # same settings: read back
+    run_recipe(recipe(True), quiet=True, resume=True)
+    saved = _json.loads(scores.read_text())
+    assert scores.stat().st_mtime_ns != stamp and saved["spotting_asked"] is True and saved["spotting"] is True
+
+
 def test_a_failed_start_leaves_no_run_folder_and_a_mistyped_corpus_is_an_error(corpus, tmp_path):
     from tinyrnnt.config import ConfigError
     from tinyrnnt.data import CorpusError

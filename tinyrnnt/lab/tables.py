@@ -91,8 +91,11 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                 name = f"{split_name}.n{n}" if variant == "greedy" else f"{variant}.{split_name}.n{n}"
                 count += 1
                 kept = load_results(folder, name) if resume else None
+                # decode.spotting is the run's, not the recipe's decoding: compared apart (results saved
+                # before it was recorded, 2026-12-03, are redone where the run spots)
                 if kept is not None and kept[1].get("checkpoint") == ckpt and kept[1].get("limit") == plan.limit \
-                        and kept[1].get("history") == history and kept[1].get("decoding") == raw:
+                        and kept[1].get("history") == history and kept[1].get("decoding") == raw \
+                        and kept[1].get("spotting_asked", False) == bool(dcfg.spotting):
                     results[(key, variant, split_name, n)] = kept
                     if tuned:  # the weight tuned before, read back
                         weight, need_tuning = kept[1]["boost_weight"], False
@@ -121,7 +124,7 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                                             search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar,
                                             sounds_like=dcfg.sounds_like, spotting=dcfg.spotting and can_spot(model))
                 summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
-                               boost_weight=weight)
+                               boost_weight=weight, spotting_asked=bool(dcfg.spotting))
                 save_results(folder, name, records, summary)
                 results[(key, variant, split_name, n)] = (records, summary)
                 if not quiet:
