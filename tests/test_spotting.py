@@ -22,10 +22,15 @@ def _collapse(path):
     return [k for k in out if k != BLANK]
 
 
-def test_spotting_scores_are_the_best_ctc_path_from_the_definition():
+@pytest.mark.parametrize("block", [16, 2])
+def test_spotting_scores_are_the_best_ctc_path_from_the_definition(block, monkeypatch):
     """Every start frame's score against brute force over all paths of every span (the CTC
     collapse rule of Graves et al. 2006): the best path spelling the entry minus the best free path
-    over the same frames, ending wherever it scores best."""
+    over the same frames, ending wherever it scores best. block 2: the frames' state scores are
+    gathered two frames at a time, so the recursion crosses those blocks."""
+    import tinyrnnt.bias.spotting as spotting
+
+    monkeypatch.setattr(spotting, "BLOCK", block)
     torch.manual_seed(0)
     V, T = 4, 5  # blank and three letters
     logp = torch.log_softmax(torch.randn(2, T, V) * 2, -1)

@@ -50,6 +50,7 @@ FLOOR = 1e-3  # share every allowed token keeps in the spotted mixing target
 NONE_SCORE = -1e4  # a spot-nothing column: rows with no open entry put their weight there (no steer, no NaN)
 NEG = -1e30
 CHUNKS = 4  # entries are scored in this many groups of similar length (fewer states for the short)
+BLOCK = 16  # frames whose state scores are gathered at once (memory: B x BLOCK x entries x states)
 # An entry whose best score anywhere in the utterance is below this (nats under the best free path) is
 # not heard at all: it is dropped from the steering, so a hypothesis following only such entries gets no
 # boost, rather than one steered among entries the model never heard. With 3,300-entry
@@ -114,19 +115,23 @@ def _spot(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Tensor:
     # states past an entry's end need no mask: going backwards, a state draws only on higher ones,
     # so they only ever draw on each other and stay at NEG or below
     stop = torch.where(can_end, 0.0, NEG)  # a span may end after a final state
-    flat = labels.view(B, N * S)
+    flat = labels.view(B, 1, N * S)
     beta = torch.full((B, N, S), NEG)  # best from frame t+1 on, having reached state s at t
+    ahead, skip = torch.empty_like(beta), torch.empty(B, N, S - 2)  # buffers reused at every frame
     out = torch.full((B, T, N), NEG)
     ended = lens.tolist()
     for t in range(T - 1, -1, -1):
-        ahead = torch.maximum(beta, stop)
-        ahead[..., :-1] = torch.maximum(ahead[..., :-1], beta[..., 1:])
-        ahead[..., :-2] = torch.maximum(ahead[..., :-2], beta[..., 2:] + skip_pen)
-        beta = ahead.add_(rel[:, t].gather(1, flat).view(B, N, S))
+        if t == T - 1 or (t + 1) % BLOCK == 0:  # the states' frame scores, BLOCK frames in one gather
+            lo = t - t % BLOCK
+            emit = rel[:, lo:t + 1].gather(2, flat.expand(B, t + 1 - lo, N * S)).view(B, t + 1 - lo, N, S)
+        torch.maximum(beta, stop, out=ahead)
+        torch.maximum(ahead[..., :-1], beta[..., 1:], out=ahead[..., :-1])
+        torch.maximum(ahead[..., :-2], torch.add(beta[..., 2:], skip_pen, out=skip), out=ahead[..., :-2])
+        beta, ahead = ahead.add_(emit[:, t - lo]), beta
         done = [b for b in range(B) if t >= ended[b]]
         if done:  # frames past a row's length
             beta[done] = NEG
-        out[:, t] = torch.maximum(beta[..., 0], beta[..., 1])
+        torch.maximum(beta[..., 0], beta[..., 1], out=out[:, t])
     out = out.clamp_min(NEG)  # sums of penalties stay below NEG: one value for "cannot"
     return out.masked_fill(~(id_lens > 0)[:, None, :], NEG)
 
