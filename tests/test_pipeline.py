@@ -205,15 +205,11 @@ evaluate: {{splits: [test_unseen], list_sizes: [0]}}
     assert again == first and (ckpt.stat().st_mtime_ns, scores.stat().st_mtime_ns) == stamps
 
 
-def test_resume_evaluates_again_when_the_run_switches_spotting_on(corpus, tmp_path):
-    """decode.spotting belongs to the run, not to the recipe's decodings: a result decoded without
-    it must not be read back for a run that now spots (nor the other way round)."""
-    import json as _json
-
-    def recipe(spot: bool):
-        path = tmp_path / "r.yaml"
-        path.write_text(f"""
-name: spots
+def _small_recipe(tmp_path, corpus, name: str, runs: str, evaluate: str) -> str:
+    """A recipe text with one tiny model and 4 training steps per run, no control arms; `runs` and
+    `evaluate` are the YAML under those keys (runs indented by two spaces)."""
+    return f"""
+name: {name}
 out_dir: {tmp_path / 'runs'}
 controls: false
 shared:
@@ -221,11 +217,23 @@ shared:
   model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
   train: {{steps: 4, minutes: 0, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
 runs:
-  trie:
-    bias: {{kind: trie, cue_dim: 8, token_boost: true, boost_mode: mix_heard}}
-    decode: {{spotting: {str(spot).lower()}}}
-evaluate: {{splits: [test_unseen], list_sizes: [10], limit: 8}}
-""")
+{runs}
+evaluate: {evaluate}
+"""
+
+
+def test_resume_evaluates_again_when_the_run_switches_spotting_on(corpus, tmp_path):
+    """decode.spotting belongs to the run, not to the recipe's decodings: a result decoded without
+    it must not be read back for a run that now spots (nor the other way round)."""
+    import json as _json
+
+    def recipe(spot: bool):
+        path = tmp_path / "r.yaml"
+        path.write_text(_small_recipe(
+            tmp_path, corpus, "spots",
+            f"  trie:\n    bias: {{kind: trie, cue_dim: 8, token_boost: true, boost_mode: mix_heard}}\n"
+            f"    decode: {{spotting: {str(spot).lower()}}}",
+            "{splits: [test_unseen], list_sizes: [10], limit: 8}"))
         return path
 
     run_recipe(recipe(False), quiet=True)
@@ -262,18 +270,9 @@ def test_resume_with_other_settings_trains_anew_rather_than_continue_a_finished_
     from tinyrnnt.lab.train import read_history
 
     recipe = tmp_path / "r.yaml"
-    text = f"""
-name: changed
-out_dir: {tmp_path / 'runs'}
-controls: false
-shared:
-  data: {{corpus: {corpus}, batch_size: 16, valid_subset: 16}}
-  model: {{encoder_dim: 32, predictor_dim: 32, predictor_embed: 16, joiner_dim: 24, encoder_layers: 2}}
-  train: {{steps: 4, minutes: 0, validate_every_steps: 4, threads: 1, snapshot_minutes: 0}}
-runs:
-  trie: {{bias: {{kind: trie, cue_dim: 8, sampling: {{respell_few_shot: RESPELL}}}}}}
-evaluate: {{splits: [test_unseen], list_sizes: [0]}}
-"""
+    text = _small_recipe(tmp_path, corpus, "changed",
+                         "  trie: {bias: {kind: trie, cue_dim: 8, sampling: {respell_few_shot: RESPELL}}}",
+                         "{splits: [test_unseen], list_sizes: [0]}")
     recipe.write_text(text.replace("RESPELL", "0.0"))
     run_recipe(recipe, quiet=True)
     ckpt = tmp_path / "runs" / "changed" / "trie" / "checkpoints" / "last.ckpt"
