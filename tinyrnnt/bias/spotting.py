@@ -47,7 +47,6 @@ from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE
 
 REACH = 2  # CTC frames on each side of a transducer frame whose span starts count for it
 FLOOR = 1e-3  # share every allowed token keeps in the spotted mixing target
-NONE_SCORE = -1e4  # a spot-nothing column: rows with no open entry put their weight there (no steer, no NaN)
 NEG = -1e30
 CHUNKS = 4  # entries are scored in this many groups of similar length (fewer states for the short)
 BLOCK = 16  # frames whose state scores are gathered at once (memory: B x BLOCK x entries x states)
@@ -224,8 +223,7 @@ class SpottingBiaser(Biaser):
         lengths = self.lengths[rows]
         open_ = (pos >= 0) & (lengths > 0)
         score = score.masked_fill(~open_, NEG)
-        logits = torch.cat([torch.full_like(score[:, :1], NONE_SCORE), score], 1)
-        w = torch.softmax(logits, -1)[:, 1:]  # (n, N)
+        w = torch.softmax(score, -1)  # (n, N); finite where nothing is open, and such rows are zeroed below
         nxt = torch.where(pos >= lengths, SPACE, self.token_at(rows, pos))  # (n, N)
         per_token = w.new_zeros(len(rows), VOCAB_SIZE).scatter_add_(1, nxt, w)
         heard = (score > CANNOT).any(1, keepdim=True)  # (n, 1) a heard entry the hypothesis could follow

@@ -103,13 +103,14 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                     continue
                 if model is None:
                     model, _, _ = load_model(ckpt)
+                spot = bool(dcfg.spotting and can_spot(model))  # this decoding's, with this model
                 if need_tuning:
                     sweep = sweep_boost(model, arm.cfg.data.corpus, plan.tune.weights, plan.tune.split,
                                         plan.tune.list_size, dcfg.beam, dcfg.max_symbols, dcfg.boost_where,
                                         dcfg.triggers, plan.tune.objective, plan.limit or None,
                                         label=f"{key} {variant}", sounds_like=dcfg.sounds_like,
                                         model_scales=plan.tune.model_scales if arm.cfg.bias.token_boost else (1.0,),
-                                        spotting=dcfg.spotting and can_spot(model))
+                                        spotting=spot)
                     write_curve(folder, f"boost_curve.{variant}", sweep)
                     weight, scale, need_tuning = sweep["chosen"], sweep["chosen_model_scale"], False
                     if not quiet:
@@ -122,7 +123,7 @@ def evaluate_arm(key: str, arm, ckpt: str, plan, quiet: bool, resume: bool, prog
                 records, summary = evaluate(model, CorpusSplit(arm.cfg.data.corpus, split_name), list_size=n,
                                             max_symbols=dcfg.max_symbols, limit=plan.limit or None,
                                             search=dcfg.search, beam=dcfg.beam, boost=boost, progress=bar,
-                                            sounds_like=dcfg.sounds_like, spotting=dcfg.spotting and can_spot(model))
+                                            sounds_like=dcfg.sounds_like, spotting=spot)
                 summary.update(history=history, checkpoint=ckpt, limit=plan.limit, decoding=raw,
                                boost_weight=weight, spotting_asked=bool(dcfg.spotting))
                 save_results(folder, name, records, summary)
