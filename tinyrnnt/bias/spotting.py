@@ -49,7 +49,7 @@ REACH = 2  # CTC frames on each side of a transducer frame whose span starts cou
 FLOOR = 1e-3  # share every allowed token keeps in the spotted mixing target
 NEG = -1e30
 CHUNKS = 4  # entries are scored in this many groups of similar length (fewer states for the short)
-BLOCK = 16  # frames whose state scores are gathered at once (memory: B x BLOCK x entries x states)
+BLOCK = 16  # frames whose letter scores are gathered at once (memory: B x BLOCK x entries x letters)
 # An entry whose best score anywhere in the utterance is below this (nats under the best free path) is
 # not heard at all: it is dropped from the steering, so a hypothesis following only such entries gets no
 # boost, rather than one steered among entries the model never heard. With 3,300-entry
@@ -99,39 +99,40 @@ def _spot(logp: Tensor, lens: Tensor, ids: Tensor, id_lens: Tensor) -> Tensor:
     """
     B, T, V = logp.shape
     N, L = ids.shape[1], ids.shape[2]
-    S = 2 * L + 1
     best_free = logp.max(-1).values  # (B, T)
     rel = logp - best_free[..., None]  # (B, T, V), <= 0
-    labels = torch.full((B, N, S), BLANK, dtype=torch.long)
-    labels[:, :, 1::2] = ids
-    in_entry = torch.arange(S)[None, None, :] < (2 * id_lens[..., None] + 1)  # (B, N, S)
-    last = (2 * id_lens - 1).clamp_min(0)  # (B, N) the last letter's state
-    can_end = (torch.arange(S)[None, None, :] >= last[..., None]) & in_entry & (id_lens[..., None] > 0)
-    # additive penalties (0 or NEG), so each frame is a few adds and maxima over (B, N, S)
-    skip_ok = (ids[:, :, 1:] != ids[:, :, :-1]) & (torch.arange(1, L)[None, None, :] < id_lens[..., None])
-    skip_pen = torch.full((B, N, S - 2), NEG)  # s -> s + 2: from a letter to a different letter
-    skip_pen[:, :, 1::2] = torch.where(skip_ok, 0.0, NEG)
-    # states past an entry's end need no mask: going backwards, a state draws only on higher ones,
-    # so they only ever draw on each other and stay at NEG or below
-    stop = torch.where(can_end, 0.0, NEG)  # a span may end after a final state
-    flat = labels.view(B, 1, N * S)
-    beta = torch.full((B, N, S), NEG)  # best from frame t+1 on, having reached state s at t
-    ahead, skip = torch.empty_like(beta), torch.empty(B, N, S - 2)  # buffers reused at every frame
-    out = torch.full((B, T, N), NEG)
-    ended = lens.tolist()
+    rel = rel.masked_fill(torch.arange(T)[None, :, None] >= lens[:, None, None], NEG)  # frames past a row's length
+    blank = rel[:, :, BLANK].contiguous()  # (B, T)
+    # The CTC states of an entry, blank and letter states apart (both contiguous): blank k (before
+    # letter k; k = length: after the last) and letter k. Going backwards, a state draws on itself,
+    # the next state, and letter k on letter k + 1 when that letter differs (a doubled letter needs a
+    # blank between). States past an entry's end draw only on each other and stay at NEG or below.
+    k = torch.arange(L)[None, None, :]
+    skip = torch.where((ids[:, :, 1:] != ids[:, :, :-1]) & (k[..., 1:] < id_lens[..., None]), 0.0, NEG)  # (B, N, L-1)
+    # a span may end after the last letter or the blank after it: every score is <= 0, so there a
+    # maximum with 0 (with NEG elsewhere: changes nothing)
+    stop_letter = torch.where(k == id_lens[..., None] - 1, 0.0, NEG)  # (B, N, L)
+    stop_blank = torch.where((torch.arange(L + 1)[None, None, :] == id_lens[..., None]) & (id_lens[..., None] > 0),
+                             0.0, NEG)  # (B, N, L + 1)
+    flat = ids.reshape(B, 1, N * L)
+    blanks = torch.full((B, N, L + 1), NEG)  # best from frame t+1 on, having reached the state at t
+    letters = torch.full((B, N, L), NEG)
+    new_blanks, new_letters = torch.empty_like(blanks), torch.empty_like(letters)  # buffers reused at every frame
+    skipped = torch.empty(B, N, max(L - 1, 0))
+    out = torch.full((T, B, N), NEG)  # frame first: each frame's scores are written in one piece
     for t in range(T - 1, -1, -1):
-        if t == T - 1 or (t + 1) % BLOCK == 0:  # the states' frame scores, BLOCK frames in one gather
+        if t == T - 1 or (t + 1) % BLOCK == 0:  # the letters' frame scores, BLOCK frames in one gather
             lo = t - t % BLOCK
-            emit = rel[:, lo:t + 1].gather(2, flat.expand(B, t + 1 - lo, N * S)).view(B, t + 1 - lo, N, S)
-        torch.maximum(beta, stop, out=ahead)
-        torch.maximum(ahead[..., :-1], beta[..., 1:], out=ahead[..., :-1])
-        torch.maximum(ahead[..., :-2], torch.add(beta[..., 2:], skip_pen, out=skip), out=ahead[..., :-2])
-        beta, ahead = ahead.add_(emit[:, t - lo]), beta
-        done = [b for b in range(B) if t >= ended[b]]
-        if done:  # frames past a row's length
-            beta[done] = NEG
-        torch.maximum(beta[..., 0], beta[..., 1], out=out[:, t])
-    out = out.clamp_min(NEG)  # sums of penalties stay below NEG: one value for "cannot"
+            emit = rel[:, lo:t + 1].gather(2, flat.expand(B, t + 1 - lo, N * L)).view(B, t + 1 - lo, N, L)
+        torch.maximum(blanks, stop_blank, out=new_blanks)
+        torch.maximum(new_blanks[..., :L], letters, out=new_blanks[..., :L])
+        torch.maximum(letters, stop_letter, out=new_letters)
+        torch.maximum(new_letters, blanks[..., 1:], out=new_letters)
+        torch.maximum(new_letters[..., :-1], torch.add(letters[..., 1:], skip, out=skipped), out=new_letters[..., :-1])
+        blanks, new_blanks = new_blanks.add_(blank[:, t, None, None]), blanks
+        letters, new_letters = new_letters.add_(emit[:, t - lo]), letters
+        torch.maximum(blanks[..., 0], letters[..., 0], out=out[t])
+    out = out.transpose(0, 1).clamp_min(NEG)  # sums of penalties stay below NEG: one value for "cannot"
     return out.masked_fill(~(id_lens > 0)[:, None, :], NEG)
 
 
