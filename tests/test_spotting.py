@@ -85,7 +85,7 @@ def test_spotting_steers_the_mixing_target_towards_the_spotted_entry():
     model = _model()
     lists = [["ab", "cb"]]
     biaser = SpottingBiaser(model.bias.decoder(lists), lists, ratio=2)
-    biaser.scores, biaser.utt = torch.tensor([[[-9.0, 0.0], [-9.0, 0.0]]]), torch.tensor([0])  # (U, T', N)
+    biaser.use_scores(torch.tensor([[[-9.0, 0.0], [-9.0, 0.0]]]), torch.tensor([0]))  # (U, T', N)
     state = biaser.start(1)
     cue = biaser.features(state)["logits"][0]
     a, b, c = encode("abc")
@@ -123,7 +123,7 @@ def test_entries_heard_nowhere_are_dropped_from_the_steering(monkeypatch):
         return biaser, at_start, biaser.features(state)["logits"][0]
 
     biaser, at_start, cue = after_a(-20.0)
-    assert biaser.table.shape[1] == 1 and biaser.table[0, 0, :2].tolist() == [c, b]  # only "cb" kept
+    assert biaser.C == 3  # only "cb" kept: its nodes (the root, "c", "cb") carry spotting mass
     assert at_start[c] == pytest.approx(1.0 + FLOOR, abs=1e-6) and at_start[a] == pytest.approx(FLOOR)
     assert (cue == 0).all()  # "ab" was never heard: no boost at all for this hypothesis
     logits = torch.randn(VOCAB_SIZE)
@@ -183,3 +183,71 @@ def test_a_token_boost_scaled_to_nothing_leaves_nothing_to_steer():
     assert [[t for t, _ in n] for n in plain] == [[t for t, _ in n] for n in spotted]
     for a, b in zip(plain, spotted):
         assert [s for _, s in a] == pytest.approx([s for _, s in b], abs=1e-5)
+
+
+def test_steering_weights_are_the_softmax_over_the_entries_the_partial_word_still_matches():
+    """The per-node sums the biaser reads against the definition written out over the list's
+    strings: at each step, the kept entries (heard somewhere above HEARD_FLOOR) that start with
+    the partial word, softmax of their scores at the frame where the word began (at a word start:
+    the current frame), summed by the letter each continues with (the space: the entry is
+    complete), plus FLOOR; no boost where no such entry could start there. Random scores (some
+    entries below the floor everywhere, some frames where an entry cannot start), a repeated entry,
+    random emissions over several frames and utterances."""
+    import math
+
+    import tinyrnnt.bias.spotting as spotting
+
+    model = _model(seed=5)
+    lists = [["vel", "veldar", "velin", "dorn", "dara", "dal", "dal"], ["kell", "kebo", "bel", "ben", "kemi"]]
+    rows = [0, 0, 0, 1, 1]
+    row_lists = [lists[u] for u in rows]
+    gen = torch.Generator().manual_seed(0)
+    T2, N = 8, max(len(x) for x in lists)
+    scores = torch.rand(2, T2, N, generator=gen) * -30  # nats under the best free path
+    scores[torch.rand(2, T2, N, generator=gen) < 0.15] = spotting.NEG  # cannot start near the frame
+    scores[1, :, len(lists[1]):] = spotting.NEG  # no entry there
+    scores[0, :, 3] = -25.0  # "dorn": below the floor everywhere, left out
+    biaser = SpottingBiaser(model.bias.decoder(row_lists), row_lists, ratio=2)
+    biaser.use_scores(scores, torch.tensor(rows))
+    kept = [[j for j in range(len(lst)) if scores[u, :, j].max() > spotting.HEARD_FLOOR] for u, lst in enumerate(lists)]
+
+    def expected(u, partial, frame):
+        out = torch.zeros(VOCAB_SIZE)
+        open_ = [j for j in kept[u] if lists[u][j].startswith(partial)]
+        live = [j for j in open_ if scores[u, frame, j] > spotting.CANNOT]
+        if not live:
+            return out  # no heard entry to follow: the boost is off
+        top = max(float(scores[u, frame, j]) for j in open_)
+        z = sum(math.exp(float(scores[u, frame, j]) - top) for j in open_)
+        for j in open_:
+            word = lists[u][j]
+            nxt = SPACE if word == partial else encode(word[len(partial)])[0]
+            out[nxt] += math.exp(float(scores[u, frame, j]) - top) / z
+        return out + FLOOR
+
+    texts, began = ["" for _ in rows], [0 for _ in rows]
+    state, inside = biaser.start(len(rows)), 0
+    alphabet = "veldarinobkm "
+    for step in range(240):
+        if step % 4 == 0:
+            biaser.set_frame(min(step // 4, T2 - 1))
+        cue = biaser.inner.features(state[0])["logits"]
+        got = biaser.features(state)["logits"]
+        for k, u in enumerate(rows):
+            partial = texts[k].split(" ")[-1]
+            frame = biaser.frame if not partial else began[k]
+            assert torch.allclose(got[k], cue[k] * expected(u, partial, frame), atol=1e-5), (texts[k], frame)
+            inside += bool(partial) and sum(lists[u][j].startswith(partial) for j in kept[u]) > 1
+        tokens, emit = [], torch.rand(len(rows), generator=gen) < 0.8
+        for k, u in enumerate(rows):  # mostly a letter that follows some entry, else any letter or a space
+            partial = texts[k].split(" ")[-1]
+            follow = [w[len(partial)] if len(w) > len(partial) else " " for w in lists[u] if w.startswith(partial)]
+            pool = follow if follow and torch.rand(1, generator=gen) < 0.85 else alphabet
+            ch = pool[int(torch.randint(0, len(pool), (1,), generator=gen))]
+            if emit[k]:
+                if not partial and ch != " ":
+                    began[k] = biaser.frame
+                texts[k] += ch
+            tokens.append(encode(ch)[0] if ch != " " else SPACE)
+        state = biaser.advance(state, torch.tensor(tokens), emit)
+    assert inside > 50  # rows inside words with several entries to choose from were checked

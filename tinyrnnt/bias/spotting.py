@@ -34,6 +34,13 @@ nowhere in the utterance, below HEARD_FLOOR, or cannot start near its frame),
 the boost is off for that step: the list does not push a hypothesis along
 entries the audio does not hold. Nothing is trained; an empty list changes
 nothing. Our own combination of published parts.
+
+The entries the partial word still matches are the entries under the
+hypothesis's prefix-tree node, so the weights need no per-entry work while
+decoding: hear() sums the heard entries' exp(score) under every tree node on
+their paths, per frame (log-sum-exp, one scatter), and a hypothesis at node x
+reads the share of each child's sum in x's (and of the entries ending at x,
+for the space): a few lookups per row and step, whatever the list size.
 """
 
 from __future__ import annotations
@@ -41,9 +48,9 @@ from __future__ import annotations
 import torch
 from torch import Tensor, nn
 
-from tinyrnnt.bias.attention import Memory, advance_gate, tokens_at
+from tinyrnnt.bias.attention import Memory
 from tinyrnnt.bias.base import Biaser
-from tinyrnnt.text import BLANK, SPACE, VOCAB_SIZE
+from tinyrnnt.text import BLANK, SPACE
 
 REACH = 2  # CTC frames on each side of a transducer frame whose span starts count for it
 FLOOR = 1e-3  # share every allowed token keeps in the spotted mixing target
@@ -54,7 +61,7 @@ BLOCK = 16  # frames whose letter scores are gathered at once (memory: B x BLOCK
 # not heard at all: it is dropped from the steering, so a hypothesis following only such entries gets no
 # boost, rather than one steered among entries the model never heard. With 3,300-entry
 # sounds-like lists this keeps at most ~250 of an utterance's entries (valid, trie arm of record,
-# 2026-12-03: 2.6 % of them) and makes the per-step work ~10x smaller.
+# 2026-12-03: 2.6 % of them), so the tables of node sums stay small.
 HEARD_FLOOR = -20.0
 # Where no entry the hypothesis could be following is heard, the boost is off (above). This was
 # chosen on valid, trie arm of record, N = 100 (2026-12-03): greedy WER 0.1001 against 0.1017
@@ -153,36 +160,63 @@ def frame_scores(starts: Tensor, ratio: int, frames: int, reach: int = REACH) ->
 
 class SpottingBiaser(Biaser):
     """Wraps the decode-time state of a biasing input whose token boost is the trie's heard mixing
-    boost; state: (inner state, row, each entry's match position, at a word start, word-start frame)."""
+    boost (a TrieBiaser, or a BothBiaser whose first part is one); state: (inner state, row,
+    frame where the current word began)."""
 
     listens = True  # the decoders call hear() with the CTC head's log-probabilities first
 
     def __init__(self, inner: Biaser, lists: list[list[str]], ratio: int):
         self.inner, self.ratio = inner, ratio
+        self.tree = inner.trie if hasattr(inner, "trie") else inner  # the part whose state is the tree node
+        self.trees = self.tree.trees  # BatchedTrees, one tree per row
         self.mem = Memory(lists)
         self.index = self.mem.index[self.mem.which]  # (R, N) each row's entries among the distinct words
         self.lengths = self.mem.lengths[self.index] * self.mem.valid[self.mem.which]  # (R, N)
-        self.table = None  # (R, N, L) each row's entries' tokens: built by hear() (heard entries only) or start()
-        self.frame, self.scores, self.utt = 0, None, None
+        self.frame, self.utt, self.mass = 0, None, None
 
     def hear(self, logp: Tensor, lens: Tensor, utt_of_row: Tensor, frames: int):
         """CTC log-probs (U, T1, V) of the utterances and their lengths (U,); utt_of_row (R,): the
         utterance of each row given to the constructor (rows of one utterance share its list)."""
-        order = torch.argsort(utt_of_row, stable=True)
-        counts = torch.bincount(utt_of_row, minlength=logp.shape[0])
-        first_row = order[(torch.cumsum(counts, 0) - counts).clamp(max=len(order) - 1)]  # a row of each utterance
-        starts = spot_starts(logp, lens, self.mem.ids[self.index[first_row]], self.lengths[first_row])  # (U, T1, N)
-        scores = frame_scores(starts, self.ratio, frames)  # (U, T', N)
-        # keep each utterance's heard entries (in list order), padded to the most any utterance keeps
-        heard = scores.amax(1) > HEARD_FLOOR  # (U, N)
-        keep = torch.argsort((~heard).to(torch.int16), dim=1, stable=True)[:, :max(int(heard.sum(1).max()), 1)]
-        kept_heard = heard.gather(1, keep)  # (U, K) false only on padding
-        self.scores = scores.gather(2, keep[:, None, :].expand(-1, scores.shape[1], -1))
-        row_keep = keep[utt_of_row]  # (R, K)
-        self.index = self.index.gather(1, row_keep)
-        self.lengths = self.lengths.gather(1, row_keep) * kept_heard[utt_of_row]
-        self.table = self.mem.ids[self.index]
-        self.utt = utt_of_row
+        first = self._first_rows(utt_of_row, logp.shape[0])
+        starts = spot_starts(logp, lens, self.mem.ids[self.index[first]], self.lengths[first])  # (U, T1, N)
+        self.use_scores(frame_scores(starts, self.ratio, frames), utt_of_row)
+
+    @staticmethod
+    def _first_rows(utt_of_row: Tensor, U: int) -> Tensor:
+        R = len(utt_of_row)
+        return torch.full((U,), R - 1).scatter_reduce_(0, utt_of_row, torch.arange(R), "amin")  # (U,)
+
+    def use_scores(self, scores: Tensor, utt_of_row: Tensor) -> None:
+        """Steer by spotting scores (U, T', N) of each utterance's entries (in list order) at each
+        transducer frame: hear()'s, or a spotter's of your own. Entries below HEARD_FLOOR at every
+        frame are left out; per frame, the log-sum-exp of the kept entries' scores under every tree
+        node on their paths (`mass`, (T', C + 1): C columns of (utterance, node), the last one NEG
+        for nodes no kept entry passes) and of those ending there (`ending`)."""
+        U = scores.shape[0]
+        first = self._first_rows(utt_of_row, U)
+        lengths = self.lengths[first]  # (U, N)
+        u, e = torch.nonzero((scores.amax(1) > HEARD_FLOOR) & (lengths > 0), as_tuple=True)  # the kept entries
+        ids, lengths = self.mem.ids[self.index[first[u], e]], lengths[u, e]  # (H, L), (H,)
+        roots = self.trees.offsets[first]  # (U,) each utterance's tree root (global node ids)
+        L = ids.shape[1]
+        path = torch.empty(len(u), L + 1, dtype=torch.long)  # each entry's nodes: the root, then after each letter
+        node = path[:, 0] = roots[u]
+        for d in range(L):
+            node = self.trees.child[node, ids[:, d]].long()  # -1 stays -1 (the dead row)
+            path[:, d + 1] = node
+        h, d = torch.nonzero((torch.arange(L + 1) <= lengths[:, None]) & (path >= 0), as_tuple=True)
+        u, e = u[h], e[h]
+        local = path[h, d] - roots[u]  # node ids within the utterance's tree
+        M = int(local.max()) + 1 if len(local) else 1
+        keys, column = torch.unique(u * M + local, return_inverse=True)
+        C = len(keys)
+        self.column = torch.full((U, M), C)  # (U, M) column of each (utterance, local node)
+        self.column[keys // M, keys % M] = torch.arange(C)
+        src = scores[u, :, e].T  # (T', P) the entry's score at each frame, once per node on its path
+        self.mass = _scatter_logsumexp(src, column, C + 1)
+        ends = d == lengths[h]
+        self.ending = _scatter_logsumexp(src[:, ends], column[ends], C + 1)
+        self.roots, self.M, self.C, self.utt = roots, M, C, utt_of_row
 
     def set_frame(self, t: int) -> bool:
         self.frame = t
@@ -195,47 +229,66 @@ class SpottingBiaser(Biaser):
         return (self.inner.cat([s[0] for s in states]), *(torch.cat(parts) for parts in zip(*(s[1:] for s in states))))
 
     def start(self, B: int):
-        if self.table is None:  # no hear(): every entry
-            self.table = self.mem.ids[self.index]
-        N = self.table.shape[1]
-        return (self.inner.start(B), torch.arange(B), torch.zeros(B, N, dtype=torch.long),
-                torch.ones(B, dtype=torch.bool), torch.zeros(B, dtype=torch.long))
+        return self.inner.start(B), torch.arange(B), torch.zeros(B, dtype=torch.long)
 
     def advance(self, state, tokens: Tensor, emit: Tensor):
-        inner, rows, pos, fresh, began = state
-        at = self.token_at(rows, pos)
-        new_pos, new_fresh = advance_gate(pos, fresh, tokens, None, self.lengths[rows], at=at,
-                                          first=self.table[rows, :, 0])
+        inner, rows, began = state
+        fresh = self.trees.is_root[self._nodes(inner)]  # at a word start: the word begins here if it emits
         began = torch.where(emit & fresh, torch.full_like(began, self.frame), began)
-        return (self.inner.advance(inner, tokens, emit), rows, torch.where(emit[:, None], new_pos, pos),
-                torch.where(emit, new_fresh, fresh), began)
+        return self.inner.advance(inner, tokens, emit), rows, began
 
-    def token_at(self, rows: Tensor, pos: Tensor) -> Tensor:
-        return tokens_at(self.table, rows, pos)
+    def _nodes(self, inner) -> Tensor:
+        return inner[0] if self.tree is not self.inner else inner
 
     def features(self, state) -> dict:
-        inner, rows, pos, fresh, began = state
+        inner, rows, began = state
         out = dict(self.inner.features(inner))
         cue = out.get("logits")
-        if cue is None or self.scores is None:
+        if cue is None or self.mass is None:
             return out
-        frame = torch.where(fresh, torch.full_like(began, self.frame), began).clamp(max=self.scores.shape[1] - 1)
-        score = self.scores[self.utt[rows], frame]  # (n, N)
-        lengths = self.lengths[rows]
-        open_ = (pos >= 0) & (lengths > 0)
-        score = score.masked_fill(~open_, NEG)
-        w = torch.softmax(score, -1)  # (n, N); finite where nothing is open, and such rows are zeroed below
-        nxt = torch.where(pos >= lengths, SPACE, self.token_at(rows, pos))  # (n, N)
-        per_token = w.new_zeros(len(rows), VOCAB_SIZE).scatter_add_(1, nxt, w)
-        heard = (score > CANNOT).any(1, keepdim=True)  # (n, 1) a heard entry the hypothesis could follow
-        out["logits"] = cue * (per_token + FLOOR) * heard  # an all-zero cue: no boost for the row
-        return out
+        nodes = self._nodes(inner)
+        frame = torch.where(self.trees.is_root[nodes], torch.full_like(began, self.frame), began)
+        out["logits"] = cue * self.weights(nodes, self.utt[rows], frame.clamp(max=self.mass.shape[0] - 1))
+        return out  # an all-zero cue: no boost for the row
+
+    def weights(self, nodes: Tensor, utt: Tensor, frame: Tensor) -> Tensor:
+        """The cue's multiplier (n, V) of rows at tree nodes (n,) of utterances (n,), at frames (n,):
+        each token's softmax weight over the kept entries under the node (their scores at the
+        frame), by the child the token leads to (the space: entries ending at the node), plus
+        FLOOR; all zero where no kept entry is under the node (the boost off)."""
+        roots = self.roots[utt]
+        here = self._columns(nodes, roots, utt)  # (n,)
+        kids = self._columns(self.trees.child[nodes].long(), roots[:, None], utt[:, None])  # (n, V)
+        total = self.mass[frame, here]  # (n,)
+        share = torch.exp(self.mass[frame[:, None], kids] - total[:, None])  # (n, V)
+        share[:, SPACE] = torch.exp(self.ending[frame, here] - total)
+        heard = total > CANNOT  # a kept entry the hypothesis could be following
+        return (share + FLOOR) * heard[:, None]
+
+    def _columns(self, nodes: Tensor, roots: Tensor, utt: Tensor) -> Tensor:
+        local = nodes - roots
+        ok = (nodes >= 0) & (local >= 0) & (local < self.M)
+        return torch.where(ok, self.column[utt, local.clamp(0, self.M - 1)], self.C)
 
     def after_predictor(self, features: dict, pred: Tensor) -> dict:
         return self.inner.after_predictor(features, pred)
 
     def frames(self, enc: Tensor) -> Tensor | None:
         return self.inner.frames(enc)
+
+
+def _scatter_logsumexp(src: Tensor, index: Tensor, size: int) -> Tensor:
+    """log sum exp of src (T, P) into `size` columns by index (P,) -> (T, size); NEG for columns
+    nothing reaches.
+
+    >>> _scatter_logsumexp(torch.tensor([[0.0, 0.0, 1.0]]), torch.tensor([1, 1, 0]), 3).tolist()[0][:2]
+    [1.0, 0.6931471824645996]
+    """
+    T = src.shape[0]
+    idx = index[None, :].expand(T, -1)
+    top = torch.full((T, size), NEG).scatter_reduce_(1, idx, src, "amax")
+    total = torch.zeros(T, size).scatter_add_(1, idx, torch.exp(src - top.gather(1, idx)))
+    return torch.where(total > 0, top + torch.log(total), torch.full_like(top, NEG))
 
 
 def can_spot(model) -> bool:
