@@ -239,3 +239,17 @@ def test_benchmark_helpers_run():
     assert len(set(invented_words(20, np.random.default_rng(0)))) > 1
     assert time_cue(list_size=5, batch=2, U=12, repeats=2) > 0
     assert time_build(list_size=5, repeats=1) > 0
+
+
+def test_normalize_folds_the_white_space_of_the_standard_library_regex():
+    """normalize() folds runs of white space to one space and strips the ends, for every character
+    Python's re module counts as white space (r"\\s" on str patterns; the standard library as the
+    reference), and only for those: list entries and transcripts are split the same everywhere."""
+    import re
+
+    from tinyrnnt.text import normalize
+
+    for code in range(0x3100):  # the Basic Latin to CJK-symbol blocks hold every white space character
+        ch = chr(code)
+        want = re.sub(r"\s+", " ", (" a" + ch + ch + "b ").strip().lower())
+        assert normalize(" a" + ch + ch + "B ") == want, hex(code)

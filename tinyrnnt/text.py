@@ -11,6 +11,7 @@ This module deliberately knows nothing about audio or models.
 from __future__ import annotations
 
 import re
+from typing import Sequence
 
 BLANK = 0
 SPACE = 1
@@ -18,7 +19,7 @@ APOSTROPHE = 2
 TOKENS: tuple[str, ...] = ("<blank>", " ", "'") + tuple("abcdefghijklmnopqrstuvwxyz")
 VOCAB_SIZE = len(TOKENS)  # V, blank included
 _INDEX = {ch: i for i, ch in enumerate(TOKENS) if i != BLANK}
-_SPACES = re.compile(r"\s+")
+_WHITE = re.compile(r"\s")  # the white space that normalize() folds (str.split and re agree on it)
 
 
 class TokenError(ValueError):
@@ -31,7 +32,23 @@ def normalize(text: str) -> str:
     >>> normalize("  Call  Maren\\tOSKE ")
     'call maren oske'
     """
-    return _SPACES.sub(" ", text.strip().lower())
+    return " ".join(text.lower().split())  # split() takes the white space of re's \s: a third of its time
+
+
+def normalize_all(texts: Sequence[str]) -> list[str]:
+    """normalize() of each text; a list of lower-case texts without white space (a biasing list's
+    usual words) is checked in one pass instead of text by text.
+
+    >>> normalize_all(["kell", "Maren  Oske"]), normalize_all(["kell", "mara"])
+    (['kell', 'maren oske'], ['kell', 'mara'])
+    """
+    try:
+        joined = "\x00".join(texts)
+    except TypeError:  # not all strings: text by text, so the caller's checks name the entry
+        return [normalize(t) for t in texts]
+    if _WHITE.search(joined) is None and joined == joined.lower():
+        return list(texts)
+    return [normalize(t) for t in texts]
 
 
 def check_text(text: str, where: str = "text") -> None:

@@ -37,7 +37,7 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from tinyrnnt.text import BLANK, SPACE, TOKENS, VOCAB_SIZE, check_text, encode, normalize
+from tinyrnnt.text import BLANK, SPACE, TOKENS, VOCAB_SIZE, check_text, encode, normalize_all
 
 WORD_START_CHOICES = ("first_tokens", "none")
 _CHAR_ID = {ch: i for i, ch in enumerate(TOKENS) if i != BLANK}
@@ -72,7 +72,7 @@ class PrefixTree:
         for i, word in enumerate(words):
             if not isinstance(word, str):
                 raise TypeError(f"biasing list entry {i} ({word!r}) is a {type(word).__name__}, expected a string")
-        texts = [normalize(w) for w in words]
+        texts = normalize_all(words)
         for i, text in enumerate(texts):
             if not text or " " in text:  # error path only: the loop stops at the first bad entry
                 where = f"biasing list entry {i} ({words[i]!r})"
