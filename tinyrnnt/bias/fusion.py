@@ -45,7 +45,7 @@ import torch
 from torch import Tensor
 
 from tinyrnnt.config import ConfigError
-from tinyrnnt.text import SPACE, TOKENS, VOCAB_SIZE, TokenError, encode, normalize
+from tinyrnnt.text import SPACE, TOKENS, VOCAB_SIZE, TokenError, encode, normalize, normalize_all
 
 BOOST_WHERE = ("anywhere", "after_trigger")
 MAX_CLASSES = 62  # class masks are int64 bit sets
@@ -96,7 +96,7 @@ class BoostAutomaton:
     """
 
     def __init__(self, entries: Sequence[str], classes: Sequence[int] | None = None, where: str = "biasing list"):
-        entries = [normalize(e) for e in entries]
+        entries = normalize_all(entries)
         classes = [0] * len(entries) if classes is None else list(classes)
         if len(classes) != len(entries):
             raise ValueError(f"{len(entries)} entries but {len(classes)} classes")
@@ -131,25 +131,28 @@ class BoostAutomaton:
         own = np.zeros(n_nodes, np.int64)  # class bits of the patterns ending here
         if N:
             np.bitwise_or.at(own, node, bits)
-        child = np.full((n_nodes, V), -1, dtype=np.int64)
+        child = np.full((n_nodes, V), -1, dtype=np.int32)
         if n_nodes > 1:
             child[parent[1:], token[1:]] = np.arange(1, n_nodes)
-        goto = np.zeros((n_nodes, V), dtype=np.int64)
+        goto = np.zeros((n_nodes, V), dtype=np.int32)
         fail = np.zeros(n_nodes, dtype=np.int64)
         goto[0] = np.where(child[0] >= 0, child[0], 0)
         # done_len: matched tokens (without the two boundaries) of the longest pattern ending
         # here or at a failure-link suffix, -1 if none; done_bits: its class bits
         done_len = np.where(own != 0, depth - 2, -1)
         done_bits = own.copy()
+        level = np.searchsorted(depth, np.arange(L + 2))  # breadth-first ids: depth d is level[d]:level[d + 1]
         for d in range(1, L + 1):
-            at = np.nonzero(depth == d)[0]
+            at = slice(level[d], level[d + 1])
             if d > 1:
                 fail[at] = goto[fail[parent[at]], token[at]]
-            goto[at] = np.where(child[at] >= 0, child[at], goto[fail[at]])
+            row = goto[fail[at]]  # where the node has no child for a token: its failure link's move
+            np.copyto(row, child[at], where=child[at] >= 0)
+            goto[at] = row
             inherit = done_len[at] < 0
             done_len[at] = np.where(inherit, done_len[fail[at]], done_len[at])
             done_bits[at] = np.where(inherit, done_bits[fail[at]], done_bits[at])
-        self.goto, self.fail, self.depth = goto.astype(np.int32), fail, depth
+        self.goto, self.fail, self.depth = goto, fail, depth
         self.through, self.done_len, self.done_bits = through, done_len, done_bits
         self.pattern_of = np.full(n_nodes, -1, np.int64)  # node -> an entry ending there
         if N:
