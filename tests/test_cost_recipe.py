@@ -65,3 +65,22 @@ def test_a_cost_recipe_names_what_is_wrong(tmp_path):
     bad.write_text("runs: {baseline: {}, trie: {bias: {kind: trie}, train: {steps: 5}}}\ncost: {sizes: [10]}\n")
     with pytest.raises(ConfigError, match=r"missing \['attention', 'trie_attention'\]"):
         read_recipe(bad)
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").is_file(), reason="needs Linux's /proc (VmHWM)")
+def test_a_spawned_measuring_process_reports_its_own_peak_not_its_parents():
+    # Source: proc(5), VmHWM is the peak resident size of the process's own address space, which
+    # execve replaces; getrusage(2) keeps ru_maxrss across fork and execve (from memory), the trap
+    # that once gave every method of the cost benchmark its large parent's peak. The parent here
+    # holds 400 MB of touched pages while a fresh interpreter reports its own peak (~50 MB).
+    import numpy as np
+
+    from tinyrnnt.runtime import peak_rss_mb
+
+    held = np.ones(400 * 2 ** 20 // 8)  # 400 MB, every page written
+    parent = peak_rss_mb()
+    out = subprocess.run([sys.executable, "-c", "from tinyrnnt.runtime import peak_rss_mb; print(peak_rss_mb())"],
+                         capture_output=True, text=True, check=True)
+    child = float(out.stdout)
+    assert held.sum() > 0 and parent > 400
+    assert 5 < child < parent - 300

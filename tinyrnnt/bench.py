@@ -27,12 +27,13 @@ import argparse
 import hashlib
 import json
 import os
-import resource
 import shutil
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+from tinyrnnt.runtime import peak_rss_mb
 
 
 def _log(msg: str) -> None:
@@ -252,7 +253,7 @@ def main(argv=None) -> int:
     except KeyboardInterrupt as stop:
         print("interrupted; arms already trained are kept (bench trie --fresh --resume continues)", file=sys.stderr)
         return 143 if isinstance(stop, Terminated) else 130
-    result["peak_rss_mb_process"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
+    result["peak_rss_mb_process"] = round(peak_rss_mb(), 1)
     print(json.dumps(result))
     return 0
 

@@ -23,6 +23,8 @@ import statistics
 import time
 from pathlib import Path
 
+from tinyrnnt.runtime import peak_rss_mb
+
 METHODS = {  # method -> (arm whose checkpoint it uses, search)
     "none": ("baseline", "greedy"),
     "trie": ("trie", "greedy"),
@@ -118,7 +120,7 @@ def measure_method(method: str, checkpoint: str, corpus: str, sizes: tuple[int, 
             if k:
                 steps.append(time.perf_counter() - t0)
         train_ms[str(n)] = round(1000 * statistics.median(steps), 1)
-    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    peak_mb = peak_rss_mb()
     return {"decode_ms": decode_ms, "train_ms": train_ms, "audio_s": audio_s,
             "rtf": {n: round(ms / 1000 * len(timed) / audio_s, 4) for n, ms in decode_ms.items()},
             "peak_mb": round(peak_mb, 1), "loaded_mb": round(loaded_mb, 1)}

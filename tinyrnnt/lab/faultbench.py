@@ -252,8 +252,8 @@ def disk_fills_during_training(root: Path, args: list, straight: Path) -> dict |
 
 def _peak_rss_mb(code: str, cwd: Path) -> tuple[float, float]:
     """Peak memory (MB) and wall seconds of `code` run in a fresh Python process."""
-    probe = f"import resource, time; t = time.perf_counter()\n{code}\n" \
-            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, time.perf_counter() - t)"
+    probe = f"import time; from tinyrnnt.runtime import peak_rss_mb; t = time.perf_counter()\n{code}\n" \
+            "print(peak_rss_mb(), time.perf_counter() - t)"
     out = subprocess.run([sys.executable, "-c", probe], cwd=cwd, capture_output=True, text=True, check=True)
     mb, s = out.stdout.split()[-2:]
     return float(mb), float(s)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import resource
 import sys
 import time
 from pathlib import Path
@@ -14,6 +13,7 @@ from tinyrnnt import config as C
 from tinyrnnt.data import CorpusSplit
 from tinyrnnt.experiment import ExperimentConfig
 from tinyrnnt.lab.evaluate import evaluate, exposure_recall, write_atomic
+from tinyrnnt.runtime import peak_rss_mb
 
 
 def _log(msg: str) -> None:
@@ -65,7 +65,7 @@ def run_train_bench(args) -> dict:
             "train_utt_per_s": round(clock.utterances / result.train_seconds, 1),
             "train_frames_per_s": round(clock.frames / result.train_seconds),
             "train_gflops": round(clock.flops / result.train_seconds / 1e9, 2),
-            "peak_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
+            "peak_rss_mb": round(peak_rss_mb(), 1),
             "curve": curve,
             "best_checkpoint": str(result.best_checkpoint),
         }
