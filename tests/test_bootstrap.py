@@ -1,5 +1,5 @@
 """Our paired bootstrap (score.compare_systems) against scipy.stats.bootstrap and against exact
-enumeration, on the error rates the report compares: WER, U-WER and B-WER, each a ratio of sums
+enumeration, on the rates the report compares: WER, U-WER, B-WER and biased-word recall, each a ratio of sums
 (total errors / total words within each resample, Bisani & Ney, ICASSP 2004)."""
 
 from __future__ import annotations
@@ -37,7 +37,7 @@ def pier_case():
     return a, {i: b[i] for i in ids}
 
 
-@pytest.mark.parametrize("rate", ["wer", "uwer", "bwer"])
+@pytest.mark.parametrize("rate", ["wer", "uwer", "bwer", "recall"])
 def test_compare_systems_matches_scipy_paired_percentile_bootstrap_on_the_pier_case(rate):
     # Source: scipy.stats.bootstrap(paired=True, method="percentile") with the same ratio-of-sums
     # statistic on the same per-utterance counts (paired by id on our side, by position on scipy's).
@@ -72,6 +72,8 @@ def test_known_rates_of_the_pier_case():
     uwer = compare_systems(a, b, rate="uwer", n_resamples=10)
     assert (bwer["rate_a"], bwer["rate_b"]) == pytest.approx((20 / 60, 9 / 60))
     assert (uwer["rate_a"], uwer["rate_b"]) == pytest.approx((12 / 240, 15 / 240))
+    recall = compare_systems(a, b, rate="recall", n_resamples=10)  # 40 and 51 of the 60 names right
+    assert (recall["rate_a"], recall["rate_b"], recall["delta"]) == pytest.approx((40 / 60, 51 / 60, 11 / 60))
 
 
 def test_probability_of_improvement_matches_exact_enumeration_of_every_resample():

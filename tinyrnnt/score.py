@@ -381,6 +381,9 @@ RATE_KEYS = {
     "cer": ("char_errors", "ref_chars"),
     "uwer": ("unbiased_errors", "unbiased_ref_words"),
     "bwer": ("biased_errors", "biased_ref_words"),
+    # not an error rate: higher is better, so a gain in recall is a positive delta and
+    # paired_bootstrap's p_improvement (B's rate lower) is then the chance B recalls less
+    "recall": ("biased_correct", "biased_ref_words"),
 }
 
 

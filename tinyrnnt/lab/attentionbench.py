@@ -6,7 +6,9 @@ trained there by its code when missing), and two new arms that fine-tune the
 same baseline checkpoint with the trie arm's steps, schedule and training
 lists: attention, and trie + attention. Accuracy: B-WER and biased-word recall
 on the unseen-name test split at N = 100 (greedy), each gain with its interval
-against the shared control; the no-list WER on the in-domain test split.
+against the shared control, and the recall of trie + attention against each
+input alone with the interval of the difference (the issue's ordering); the
+no-list WER on the in-domain test split.
 
 Cost (tinyrnnt.lab.cost): training step time and decoding time per utterance at
 each list size, one thread, for no biasing, trie cue, attention, both and
@@ -136,6 +138,9 @@ def accuracy(args, checkpoints: dict[str, str], spotting: dict[str, bool]) -> di
     for key, label in (("attention", "attention"), ("trie_attention", "trie_attention")):
         ci = compare_systems(counts[("baseline", "test_unseen")], counts[(key, "test_unseen")], rate="bwer")
         res[f"bwer_delta_{label}_vs_baseline_ci95_n100"] = [r4(ci["low"]), r4(ci["high"])]
+    for key, label in (("trie", "trie"), ("attention", "attention")):  # the ordering, with its interval
+        ci = compare_systems(counts[(key, "test_unseen")], counts[("trie_attention", "test_unseen")], rate="recall")
+        res[f"recall_delta_trie_attention_vs_{label}_ci95_n100"] = [r4(ci["low"]), r4(ci["high"])]
     res["bwer_by_style_n100"] = {key: {k[len("bwer:style:"):]: r4(v) for k, v in out[(key, "test_unseen")].items()
                                        if k.startswith("bwer:style:")} for key in checkpoints}
     res["train_steps"] = {key: read_history(ckpt)["steps"] for key, ckpt in checkpoints.items()}
