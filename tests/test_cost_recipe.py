@@ -72,7 +72,7 @@ def test_a_spawned_measuring_process_reports_its_own_peak_not_its_parents():
     # Source: proc(5), VmHWM is the peak resident size of the process's own address space, which
     # execve replaces; getrusage(2) keeps ru_maxrss across fork and execve (from memory), the trap
     # that once gave every method of the cost benchmark its large parent's peak. The parent here
-    # holds 400 MB of touched pages while a fresh interpreter reports its own peak (~50 MB).
+    # holds 400 MB of touched pages while a fresh interpreter reports its own peak (11 MB here).
     import numpy as np
 
     from tinyrnnt.runtime import peak_rss_mb

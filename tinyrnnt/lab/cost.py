@@ -96,9 +96,12 @@ def measure_method(method: str, checkpoint: str, corpus: str, sizes: tuple[int, 
     decode_ms, train_ms, audio_s = {}, {}, sum(len(split[i]["feats"]) * hop for i in timed)
     params = [p for p in model.parameters() if p.requires_grad]
     optimiser = torch.optim.Adam(params, lr=1e-5)
+    # every timed utterance once, untimed, before any size is measured. The first size still runs
+    # slower for the plain model (42.6 against 21-29 ms per utterance, though it reads no list);
+    # the cause is not known (README, "What the benchmarks measured")
     model.eval()
-    with torch.no_grad():  # subtle: every timed utterance once, untimed: the first size measured paid
-        for i in timed:  # for the shapes (oneDNN primitives) every later size reuses (42 against 19 ms)
+    with torch.no_grad():
+        for i in timed:
             _decode_one(model, method, collate([{**split[i], "list": timing_list(split, i, min(sizes))}]))
     for n in sorted(sizes):
         def batch_of(ids):
